@@ -1,0 +1,290 @@
+"""Reading label masks and writing label images: the only place that touches image files.
+
+Masks are read in their stored integer type (never as float64), the header is honoured as the
+NIfTI-1 standard defines it (sform before qform, ``xyzt_units``, ``scl_slope``/``scl_inter``), and an
+image whose declared size exceeds the memory cap is refused before its data is decompressed.
+All geometry leaves this module as a float64 voxel -> RAS+ millimetre affine.
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import zlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+from pipeline.errors import InputError
+from pipeline.settings import VolumeSettings
+from pipeline.tables import atomic_path
+
+NIFTI_SUFFIXES = (".nii", ".nii.gz")
+ITK_SUFFIXES = (".nrrd", ".nhdr", ".mha", ".mhd")
+#: NIfTI-1 spatial unit codes (xyzt_units & 0x07) -> factor to millimetres (NIfTI-1 standard, nifti1.h)
+UNIT_TO_MM = {0: 1.0, 1: 1000.0, 2: 1.0, 3: 0.001}
+UNIT_NAMES = {0: "unknown", 1: "meter", 2: "mm", 3: "micron"}
+
+
+@dataclass(frozen=True, eq=False)
+class MaskImage:
+    """A label mask as stages use it: integer voxels and a RAS+ mm affine."""
+
+    data: np.ndarray          # (X, Y, Z) integer array, as stored (Fortran order for NIfTI)
+    affine: np.ndarray        # (4, 4) float64 voxel -> RAS+ mm
+    sha256: str
+    warnings: tuple[str, ...] = ()
+    file_affine: np.ndarray | None = None   # affine in the file's own units (for track images)
+    units_code: int = 2                     # NIfTI-1 spatial unit code of the file
+
+    @property
+    def voxel_volume_mm3(self) -> float:
+        return float(abs(np.linalg.det(self.affine[:3, :3])))
+
+
+def suffix_of(path: str | Path) -> str:
+    """The file type suffix, with ``.nii.gz`` kept whole.
+
+    >>> suffix_of("sub-01_mask.nii.gz"), suffix_of("a.MHA")
+    ('.nii.gz', '.mha')
+    """
+    name = str(path).lower()
+    for suffix in NIFTI_SUFFIXES[::-1] + ITK_SUFFIXES:
+        if name.endswith(suffix):
+            return suffix
+    return Path(name).suffix
+
+
+def load_mask(path: str | Path, *, settings: VolumeSettings = VolumeSettings(),
+              raw: bytes | None = None) -> MaskImage:
+    """Read one label mask; every problem becomes an ``InputError`` naming the file and the reason.
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.nii``/``.nii.gz`` (NIfTI-1 or NIfTI-2) or ``.nrrd``/``.mha``/``.mhd`` (via SimpleITK).
+    settings : VolumeSettings
+        ``max_memory_mb``, ``accept_unknown_orientation`` and ``affine_tolerance_mm`` are used.
+    raw : bytes, optional
+        The file's bytes when the caller has read them already (NIfTI only).
+    """
+    path = Path(path)
+    if raw is None and not path.exists():
+        raise InputError(f"{path}: file not found", path=str(path))
+    if raw is None and path.is_dir():
+        raise InputError(f"{path}: is a folder, expected a mask file", path=str(path))
+    suffix = suffix_of(path)
+    if suffix in NIFTI_SUFFIXES:
+        raw = path.read_bytes() if raw is None else raw
+        if not raw:
+            raise InputError(f"{path}: file is empty", path=str(path))
+        mask = _load_nifti_bytes(raw, gz=suffix == ".nii.gz", name=str(path), settings=settings)
+    elif suffix in ITK_SUFFIXES:
+        from pipeline.itk_io import load_itk_mask
+
+        mask = load_itk_mask(path, settings=settings)
+    else:
+        raise InputError(f"{path}: unsupported file type {suffix!r}; expected .nii, .nii.gz, "
+                         ".nrrd, .mha or .mhd", path=str(path))
+    return mask
+
+
+def _decompress(raw: bytes, name: str, limit: int | None = None) -> bytes:
+    try:
+        if limit is None:
+            return zlib.decompress(raw, wbits=31)
+        return zlib.decompressobj(wbits=31).decompress(raw, limit)
+    except zlib.error as exc:
+        reason = "truncated" if "incomplete" in str(exc) or "truncated" in str(exc) else "corrupt"
+        raise InputError(f"{name}: gzip data is {reason} ({exc})", path=name) from None
+
+
+def _parse_header(head: bytes, name: str) -> nib.Nifti1Header:
+    if len(head) < 348:
+        raise InputError(f"{name}: file is too short to hold a NIfTI header "
+                         f"({len(head)} bytes)", path=name)
+    size_le = int.from_bytes(head[:4], "little")
+    size_be = int.from_bytes(head[:4], "big")
+    klass = nib.Nifti2Header if 540 in (size_le, size_be) else nib.Nifti1Header
+    if 348 not in (size_le, size_be) and klass is nib.Nifti1Header:
+        raise InputError(f"{name}: not a NIfTI file (sizeof_hdr is {size_le})", path=name)
+    size = 540 if klass is nib.Nifti2Header else 348
+    try:  # header only: extensions are never read (they may hold identifiers)
+        return klass.from_fileobj(io.BytesIO(head[:size]), check=True)
+    except Exception as exc:  # nibabel raises several types for broken headers
+        raise InputError(f"{name}: invalid NIfTI header ({exc})", path=name) from None
+
+
+def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
+                      settings: VolumeSettings) -> MaskImage:
+    sha = hashlib.sha256(raw).hexdigest()
+    head = _decompress(raw, name, 544) if gz else raw[:544]
+    header = _parse_header(head, name)
+    shape = _mask_shape(header, name)
+    dtype = header.get_data_dtype()
+    _check_memory(shape, dtype.itemsize, name, settings)
+    affine, warnings = nifti_affine(header, name=name, settings=settings)
+    units = int(header["xyzt_units"]) & 0x07
+    body = _decompress(raw, name) if gz else raw
+    offset = int(header["vox_offset"])
+    count = int(np.prod(shape))
+    needed = offset + count * dtype.itemsize
+    if len(body) < needed:
+        raise InputError(f"{name}: file is truncated: header declares {needed} bytes, "
+                         f"file holds {len(body)}", path=name)
+    data = np.frombuffer(body, dtype=dtype, count=count, offset=offset).reshape(shape, order="F")
+    slope, inter = header.get_slope_inter()
+    data = integer_labels(data, slope, inter, name=name)
+    return MaskImage(data=data, affine=affine, sha256=sha, warnings=tuple(warnings),
+                     file_affine=np.asarray(header.get_best_affine(), dtype=np.float64),
+                     units_code=units)
+
+
+def _mask_shape(header: nib.Nifti1Header, name: str) -> tuple[int, int, int]:
+    dims = [int(d) for d in header["dim"][1:int(header["dim"][0]) + 1]]
+    if not 1 <= len(dims) <= 7 or any(d < 1 for d in dims):
+        raise InputError(f"{name}: impossible image dimensions {dims}", path=name)
+    while len(dims) > 3 and dims[-1] == 1:
+        dims.pop()
+    if len(dims) > 3:
+        extra = int(np.prod(dims[3:]))
+        raise InputError(f"{name}: mask has {extra} volumes (shape {tuple(dims)}); expected one "
+                         "3-D mask", path=name)
+    while len(dims) < 3:
+        dims.append(1)
+    return (dims[0], dims[1], dims[2])
+
+
+def _check_memory(shape: tuple[int, ...], itemsize: int, name: str,
+                  settings: VolumeSettings) -> None:
+    needed = float(np.prod(shape, dtype=float)) * itemsize / 2**20
+    if needed > settings.max_memory_mb:
+        raise InputError(f"{name}: mask would need {needed:,.0f} MB in memory (limit "
+                         f"{settings.max_memory_mb:,.0f} MB, setting volumes.max_memory_mb)",
+                         path=name)
+
+
+def nifti_affine(header: nib.Nifti1Header, *, name: str,
+                 settings: VolumeSettings = VolumeSettings()) -> tuple[np.ndarray, list[str]]:
+    """Voxel -> RAS+ mm affine by the NIfTI-1 rules: sform if its code is set, else qform.
+
+    Spatial units are converted to mm from ``xyzt_units`` (code 0 is taken as mm with a
+    warning). Both codes 0 is refused unless ``accept_unknown_orientation`` is set.
+    """
+    warnings: list[str] = []
+    s_code, q_code = int(header["sform_code"]), int(header["qform_code"])
+    zooms = np.asarray(header.get_zooms()[:3], dtype=float)
+    if not np.all(np.isfinite(zooms)) or np.any(zooms[: _ndim(header)] <= 0):
+        raise InputError(f"{name}: impossible voxel sizes {tuple(zooms.tolist())}", path=name)
+    if s_code == 0 and q_code == 0:
+        if not settings.accept_unknown_orientation:
+            raise InputError(f"{name}: orientation unknown (sform_code and qform_code are 0); set "
+                             "volumes.accept_unknown_orientation = true to assume nibabel's "
+                             "default", path=name)
+        warnings.append(f"{name}: orientation unknown (sform and qform codes 0); assumed "
+                        "nibabel's default orientation")
+    affine = np.asarray(header.get_best_affine(), dtype=np.float64)
+    if s_code and q_code:
+        gap = _affine_gap_mm(header.get_sform(), header.get_qform(), header)
+        if gap > settings.affine_tolerance_mm:
+            warnings.append(f"{name}: sform and qform disagree by {gap:.3g} mm; using the sform")
+    if not np.all(np.isfinite(affine)):
+        raise InputError(f"{name}: affine has non-finite values", path=name)
+    unit = int(header["xyzt_units"]) & 0x07
+    if unit not in UNIT_TO_MM:
+        raise InputError(f"{name}: unknown spatial unit code {unit} in xyzt_units", path=name)
+    if unit == 0:
+        warnings.append(f"{name}: spatial unit unknown (xyzt_units 0); taken as millimetres")
+    affine[:3, :] *= UNIT_TO_MM[unit]
+    det = float(np.linalg.det(affine[:3, :3]))
+    if not np.isfinite(det) or abs(det) < 1e-12:
+        raise InputError(f"{name}: affine is singular (determinant {det:.3g})", path=name)
+    sizes = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
+    if np.any(sizes > 100.0):
+        raise InputError(f"{name}: voxel sizes {tuple(np.round(sizes, 3))} mm exceed 100 mm",
+                         path=name)
+    return affine, warnings
+
+
+def _ndim(header: nib.Nifti1Header) -> int:
+    return min(3, int(header["dim"][0]))
+
+
+def _affine_gap_mm(sform: np.ndarray, qform: np.ndarray, header: nib.Nifti1Header) -> float:
+    """Largest distance (mm) between the two affines' positions of the image corners."""
+    shape = np.asarray([max(int(d), 1) for d in header["dim"][1:4]], dtype=float) - 1
+    corners = np.array([[i, j, k, 1.0] for i in (0, shape[0]) for j in (0, shape[1])
+                        for k in (0, shape[2])]).T
+    return float(np.max(np.linalg.norm((sform - qform)[:3] @ corners, axis=0)))
+
+
+def integer_labels(data: np.ndarray, slope: float | None, inter: float | None, *,
+                   name: str) -> np.ndarray:
+    """Label values after header scaling; refuse values that are not integers.
+
+    Examples
+    --------
+    >>> integer_labels(np.array([0, 2], np.int16), 0.5, 0.0, name="m.nii").tolist()
+    [0, 1]
+    >>> integer_labels(np.array([0.0, 0.3]), None, None, name="m.nii")
+    Traceback (most recent call last):
+    ...
+    pipeline.errors.InputError: m.nii: labels must be integers; got float64 with value 0.3 ...
+    """
+    scaled = slope is not None and np.isfinite(slope) and slope != 0 and (slope != 1 or
+                                                                         (inter or 0) != 0)
+    if scaled:
+        values = data.astype(np.float64) * float(slope) + float(inter or 0.0)
+        where = " after scl_slope/scl_inter scaling"
+    elif data.dtype.kind in "iub":
+        return data
+    else:
+        values, where = data, ""
+    finite = np.isfinite(values)
+    if not finite.all():
+        raise InputError(f"{name}: labels must be finite; the mask holds NaN or infinity",
+                         path=name)
+    rounded = np.rint(values)
+    bad = np.abs(values - rounded) > 1e-6
+    if bad.any():
+        example = float(values[bad].flat[0])
+        raise InputError(f"{name}: labels must be integers{where}; got {data.dtype} with value "
+                         f"{example:.4g} - is this a probability map? threshold it first",
+                         path=name)
+    info = np.iinfo(np.int32)
+    fits_int32 = info.min <= rounded.min(initial=0) and rounded.max(initial=0) <= info.max
+    return rounded.astype(np.int32 if fits_int32 else np.int64)
+
+
+def label_dtype(max_value: int) -> np.dtype:
+    """Smallest integer type for a label image (never int64: other tools break on it).
+
+    >>> label_dtype(3), label_dtype(300), label_dtype(70000)
+    (dtype('uint8'), dtype('int16'), dtype('int32'))
+    """
+    if max_value <= 255:
+        return np.dtype(np.uint8)
+    if max_value <= 32767:
+        return np.dtype(np.int16)
+    return np.dtype(np.int32)
+
+
+def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *,
+                     units_code: int = 2) -> None:
+    """Write a label image from a fresh header: geometry only, slope 1, no text fields.
+
+    ``affine`` is the voxel -> world affine in the unit named by ``units_code`` (NIfTI-1 spatial
+    unit code; 2 = mm), so a track image copies its input mask's geometry exactly.
+    """
+    dtype = label_dtype(int(labels.max(initial=0)))
+    header = nib.Nifti1Header()
+    header.set_data_dtype(dtype)
+    image = nib.Nifti1Image(np.asarray(labels, dtype=dtype), affine, header=header)
+    image.set_sform(affine, code=1)
+    image.set_qform(affine, code=1)
+    image.header["xyzt_units"] = units_code & 0x07
+    image.header.set_slope_inter(1.0, 0.0)
+    image.header["intent_code"] = 1002  # NIFTI_INTENT_LABEL (nifti1.h)
+    with atomic_path(path) as tmp:
+        nib.save(image, tmp)

@@ -1,0 +1,149 @@
+"""Stages 2 and 3 and the report wired to the files in OUT (used by ``workflow``)."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from pipeline.config import Config
+from pipeline.errors import UsageError
+from pipeline.runner import Stage1, say
+from pipeline.tables import read_table, write_sidecar, write_table
+
+
+def bids_name(prefix: str, value: str) -> str:
+    """``sub-01`` from ``01`` or ``sub-01``: never double a prefix.
+
+    >>> bids_name("sub", "01"), bids_name("sub", "sub-01")
+    ('sub-01', 'sub-01')
+    """
+    return value if value.startswith(f"{prefix}-") else f"{prefix}-{value}"
+
+
+def track_path(out: Path, subject: str, session: str) -> Path:
+    return out / "tracks" / f"{bids_name('sub', subject)}_{bids_name('ses', session)}_tracks.nii.gz"
+
+
+def run_matching(stage: Stage1, out: Path, *, config: Config,
+                 corrections: pd.DataFrame | None) -> list[dict]:
+    """Stage 2 for every subject; writes matches.tsv, longitudinal.tsv, tracks/. Returns errors."""
+    from pipeline import matching
+    from pipeline.io import save_label_image
+
+    errors: list[dict] = []
+    parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": [], "assignment": []}
+    groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
+    for subject in sorted({s.subject for s in stage.scans}):
+        scans = stage.labelled(subject)
+        if not scans:
+            continue
+        rows = stage.lesions[stage.lesions.subject == subject]
+        mine = None if corrections is None else corrections[corrections.subject == subject]
+        try:
+            result = matching.match_subject(scans, rows, settings=config.matching,
+                                            corrections=mine)
+        except (ValueError, KeyError) as exc:
+            errors.append({"subject": subject, "session": "", "path": "", "stage": "match",
+                           "reason": f"matching failed: {exc}"})
+            continue
+        for warning in result.warnings:
+            say(f"warning: sub {subject}: {warning}")
+        parts["matches"].append(result.matches)
+        longitudinal = result.longitudinal.copy()
+        longitudinal["group"] = groups.get(subject, "")
+        parts["longitudinal"].append(longitudinal)
+        parts["assignment"].append(result.assignment)
+        for scan in scans:
+            res = stage.results[(scan.subject, scan.session)]
+            image = matching.track_image(scan, result.assignment)
+            save_label_image(track_path(out, scan.subject, scan.session), image,
+                             res.file_affine, units_code=res.units_code)
+    _write_stage2(out, parts)
+    return errors
+
+
+def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
+    from pipeline import matching
+
+    columns = getattr(matching, "MATCH_COLUMNS", None)
+    for name in ("matches", "longitudinal"):
+        frames = [f for f in parts[name] if len(f)]
+        table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
+            columns=_contract_columns(name))
+        write_table(table, out / f"{name}.tsv", columns=_contract_columns(name))
+        sidecar = getattr(matching, f"{name.upper()}_COLUMNS_DOC", None) or \
+            getattr(matching, "COLUMNS", {}).get(name) if isinstance(
+                getattr(matching, "COLUMNS", None), dict) else None
+        if sidecar:
+            write_sidecar(out / f"{name}.tsv", sidecar)
+    del columns
+
+
+def _contract_columns(name: str) -> tuple[str, ...]:
+    return {
+        "matches": ("subject", "session_from", "component_from", "session_to", "component_to",
+                    "relation", "overlap", "centroid_distance_mm"),
+        "longitudinal": ("subject", "lesion", "session", "day", "volume_mm3", "status",
+                         "components"),
+        "fits": ("subject", "lesion", "phase", "model", "n_points", "day_start", "day_end",
+                 "v0_mm3", "alpha", "beta", "beta_ci_low", "beta_ci_high", "aicc", "note"),
+        "group_fits": ("group", "phase", "model", "n_lesions", "n_points", "beta",
+                       "beta_ci_low", "beta_ci_high"),
+    }[name]
+
+
+def read_events(path: Path, origins: dict[str, float], known: set[str]
+                ) -> tuple[pd.DataFrame, list[dict]]:
+    """Events as days from each subject's first session; rows naming unknown subjects refused."""
+    from pipeline.inputs import parse_when
+
+    table = read_table(path, text_columns=("subject", "event", "date", "day", "lesion"))
+    kind = "date" if "date" in table.columns else "day" if "day" in table.columns else None
+    missing = [c for c in ("subject", "event") if c not in table.columns]
+    if missing or kind is None:
+        raise UsageError(f"{path}: events table needs columns subject, event and date or day")
+    rows, errors = [], []
+    for index, row in table.iterrows():
+        where = f"{path.name} row {index + 2}"
+        try:
+            if row.subject not in known:
+                raise ValueError(f"subject {row.subject!r} is not in the input")
+            when = parse_when(row[kind], kind) - origins.get(row.subject, 0.0)
+            lesion = float(row.lesion) if "lesion" in table.columns and row.lesion else np.nan
+            if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):
+                raise ValueError(f"lesion {row.lesion!r} must be a positive integer")
+        except ValueError as exc:
+            errors.append({"subject": row.subject, "session": "", "path": str(path),
+                           "stage": "events", "reason": f"{where}: {exc}"})
+            continue
+        rows.append({"subject": row.subject, "day": when, "event": row.event, "lesion": lesion})
+    return pd.DataFrame(rows, columns=["subject", "day", "event", "lesion"]), errors
+
+
+def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
+    """Stage 3 on longitudinal.tsv: fits.tsv and group_fits.tsv."""
+    from pipeline import groupfit, growth, phases
+
+    longitudinal = read_table(out / "longitudinal.tsv")
+    if "group" not in longitudinal.columns:
+        longitudinal["group"] = ""
+    phased = phases.assign_phases(longitudinal, events, settings=config.fitting)
+    fits = growth.fit_lesions(phased, settings=config.fitting)
+    group_fits = groupfit.fit_groups(phased, settings=config.fitting)
+    write_table(fits, out / "fits.tsv", columns=_contract_columns("fits"))
+    write_table(group_fits, out / "group_fits.tsv", columns=_contract_columns("group_fits"))
+    for name, module in (("fits", growth), ("group_fits", groupfit)):
+        doc = getattr(module, "COLUMNS", None)
+        if isinstance(doc, dict):
+            write_sidecar(out / f"{name}.tsv", doc)
+    if events is not None:
+        write_table(events, out / "events.tsv", columns=("subject", "day", "event", "lesion"))
+
+
+def load_provenance(out: Path) -> dict:
+    path = out / "provenance.json"
+    if not path.exists():
+        raise UsageError(f"{out}: no provenance.json; run 'lesion-growth volumes' or 'run' first")
+    return json.loads(path.read_text())

@@ -1,0 +1,152 @@
+"""The stages wired to files: what ``lesion-growth`` commands run. Only this module and ``cli``
+decide which file is read or written; the stages themselves work on in-memory tables."""
+from __future__ import annotations
+
+import json
+import sys
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from pipeline import __version__
+from pipeline.batch import ScanResult, run_tasks, volumes_task
+from pipeline.config import Config
+from pipeline.inputs import Scan, read_inputs
+from pipeline.tables import write_sidecar, write_table
+from pipeline.volumes import LESION_COLUMNS, LabelledScan, scan_table
+
+ERROR_COLUMNS = ("subject", "session", "path", "stage", "reason")
+MASK_COLUMNS = ("subject", "session", "day", "mask", "image", "group", "components", "volume_mm3",
+                "voxel_volume_mm3", "shape_x", "shape_y", "shape_z", "sha256")
+
+
+def say(message: str) -> None:
+    """One line for a person, on stderr (stdout stays clean for scripts)."""
+    print(message, file=sys.stderr, flush=True)
+
+
+@dataclass
+class Stage1:
+    """Everything stage 1 produced, in memory, for the later stages of the same run."""
+
+    scans: list[Scan]
+    kind: str
+    results: dict[tuple[str, str], ScanResult] = field(default_factory=dict)
+    errors: list[dict] = field(default_factory=list)
+    lesions: pd.DataFrame | None = None
+    masks: pd.DataFrame | None = None
+
+    @property
+    def recomputed(self) -> int:
+        return sum(1 for r in self.results.values() if r.ok and not r.cached)
+
+    def labelled(self, subject: str) -> list[LabelledScan]:
+        """The subject's successfully read scans, ordered by day."""
+        out = []
+        for scan in sorted(self.scans, key=lambda s: (s.day, s.session)):
+            result = self.results.get(scan.key)
+            if scan.subject == subject and not scan.error and result is not None and result.ok:
+                out.append(LabelledScan(scan.subject, scan.session, scan.day, result.components,
+                                        result.offset, result.shape, result.affine))
+        return out
+
+
+def error_row(scan: Scan, reason: str, stage: str) -> dict:
+    """An errors.tsv row; the reason names the file as given in the input, never the machine's
+    resolved path."""
+    return {"subject": scan.subject, "session": scan.session, "path": scan.mask,
+            "stage": stage, "reason": as_given(reason, scan)}
+
+
+def as_given(text: str, scan: Scan) -> str:
+    return text.replace(str(scan.mask_path), scan.mask)
+
+
+def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: int = 1,
+                scheduler: str | None = None, progress: Callable[[int, int], None] | None = None,
+                use_cache: bool = True) -> Stage1:
+    """Stage 1 over every scan of INPUT; writes lesions.tsv, masks.tsv and errors.tsv."""
+    scans, kind = read_inputs(input_path, desc=config.volumes.desc)
+    stage = Stage1(scans=scans, kind=kind)
+    for scan in scans:
+        if scan.error:
+            stage.errors.append(error_row(scan, scan.error, "input"))
+    todo = [s for s in scans if not s.error]
+    cache_dir = str(out / ".cache" / "volumes") if use_cache else None
+    digest = f"{__version__}|{config.digest('volumes')}"
+    tasks = [(volumes_task, (s.subject, s.session, str(s.mask_path), s.labels, config.volumes,
+                             cache_dir, digest)) for s in todo]
+    if progress:
+        progress(0, len(tasks))
+    for done, (index, result) in enumerate(run_tasks(tasks, workers=workers,
+                                                     scheduler=scheduler), start=1):
+        scan = todo[index]
+        stage.results[scan.key] = result
+        if not result.ok:
+            stage.errors.append(error_row(scan, result.error, "volumes"))
+        if progress:
+            progress(done, len(tasks))
+    stage.lesions, stage.masks = _stage1_tables(stage)
+    write_stage1(stage, out)
+    return stage
+
+
+def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
+    lesion_parts, mask_rows = [], []
+    for scan in sorted(stage.scans, key=lambda s: (s.subject, s.day, s.session)):
+        result = stage.results.get(scan.key)
+        if scan.error or result is None or not result.ok:
+            continue
+        lesion_parts.append(scan_table(result.table, subject=scan.subject, session=scan.session,
+                                       day=scan.day, mask=scan.mask, group=scan.group))
+        mask_rows.append({"subject": scan.subject, "session": scan.session, "day": scan.day,
+                          "mask": scan.mask, "image": scan.image, "group": scan.group,
+                          "components": len(result.table),
+                          "volume_mm3": float(result.table.volume_mm3.sum()),
+                          "voxel_volume_mm3": float(abs(_det(result.affine))),
+                          "shape_x": result.shape[0], "shape_y": result.shape[1],
+                          "shape_z": result.shape[2], "sha256": result.sha256})
+    lesions = pd.concat(lesion_parts, ignore_index=True) if lesion_parts else \
+        pd.DataFrame(columns=list(LESION_COLUMNS))
+    return lesions, pd.DataFrame(mask_rows, columns=list(MASK_COLUMNS))
+
+
+def _det(affine) -> float:
+    import numpy as np
+
+    return float(np.linalg.det(np.asarray(affine)[:3, :3]))
+
+
+def write_stage1(stage: Stage1, out: Path) -> None:
+    from pipeline.sidecars import ERROR_SIDECAR, LESION_SIDECAR, MASK_SIDECAR
+
+    out.mkdir(parents=True, exist_ok=True)
+    write_table(stage.lesions, out / "lesions.tsv", columns=LESION_COLUMNS)
+    write_sidecar(out / "lesions.tsv", LESION_SIDECAR)
+    write_table(stage.masks, out / "masks.tsv", columns=MASK_COLUMNS)
+    write_sidecar(out / "masks.tsv", MASK_SIDECAR)
+    write_errors(stage.errors, out)
+    write_sidecar(out / "errors.tsv", ERROR_SIDECAR)
+
+
+def write_errors(errors: list[dict], out: Path) -> None:
+    table = pd.DataFrame(errors, columns=list(ERROR_COLUMNS))
+    table = table.sort_values(["subject", "session", "stage"], kind="stable")
+    write_table(table, out / "errors.tsv", columns=ERROR_COLUMNS)
+
+
+def read_errors(out: Path) -> list[dict]:
+    from pipeline.tables import read_table
+
+    path = out / "errors.tsv"
+    if not path.exists():
+        return []
+    return read_table(path).to_dict("records")
+
+
+def write_json(path: Path, data: dict) -> None:
+    from pipeline.tables import write_text
+
+    write_text(path, json.dumps(data, indent=2, default=str) + "\n")

@@ -1,0 +1,313 @@
+"""Stage 1: label mask + affine -> one row per connected lesion component."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+
+@dataclass(frozen=True, eq=False)
+class LabelledScan:
+    """The connected components of one scan, as later stages need them.
+
+    ``components`` covers only the bounding box of the lesion voxels (masks are mostly empty):
+    voxel ``components[i, j, k]`` is voxel ``(i, j, k) + offset`` of the full grid. Value 0 is
+    background, value ``c`` is component ``c`` of ``lesions.tsv`` for this subject and session.
+    """
+
+    subject: str
+    session: str
+    day: float
+    components: np.ndarray          # (a, b, c) int32, the crop box
+    offset: tuple[int, int, int]    # voxel index of components[0, 0, 0] in the full grid
+    shape: tuple[int, int, int]     # full grid shape
+    affine: np.ndarray              # (4, 4) float64, full-grid voxel -> RAS+ mm
+
+    @property
+    def crop_affine(self) -> np.ndarray:
+        """Voxel index in the crop box -> RAS+ mm."""
+        shift = np.eye(4)
+        shift[:3, 3] = self.offset
+        return self.affine @ shift
+
+    def full_components(self) -> np.ndarray:
+        """The component image on the full grid (allocates the whole grid)."""
+        full = np.zeros(self.shape, dtype=np.int32)
+        i, j, k = self.offset
+        a, b, c = self.components.shape
+        full[i:i + a, j:j + b, k:k + c] = self.components
+        return full
+
+
+#: Columns of lesions.tsv written by this stage, in order (contract columns first).
+LESION_COLUMNS = ("subject", "session", "day", "component", "label", "voxels", "volume_mm3",
+                  "centroid_x_mm", "centroid_y_mm", "centroid_z_mm", "max_axial_diameter_mm",
+                  "equivalent_diameter_mm", "bbox_i_min", "bbox_i_max", "bbox_j_min",
+                  "bbox_j_max", "bbox_k_min", "bbox_k_max", "axial_slices", "touches_border",
+                  "measurable", "mask", "group")
+
+MEASURE_COLUMNS = LESION_COLUMNS[3:21]
+
+
+def select_labels(data: np.ndarray, labels: tuple[int, ...] | None, *, name: str = "mask"
+                  ) -> np.ndarray:
+    """Boolean lesion mask: the selected label values merged (all non-zero values by default).
+
+    A label asked for that the mask does not hold, while it holds other non-zero values, is an
+    error: the ``labels`` column probably names the wrong values.
+
+    Examples
+    --------
+    >>> select_labels(np.array([0, 1, 3, 2]), (1, 3)).tolist()
+    [False, True, True, False]
+    >>> select_labels(np.array([0, 2]), (1,), name="m.nii.gz")
+    Traceback (most recent call last):
+    ...
+    pipeline.errors.InputError: m.nii.gz: label values (1,) asked for, but the mask holds only [2]
+    """
+    if labels is None:
+        return data != 0
+    selected = np.isin(data, np.asarray(labels, dtype=data.dtype))
+    if not selected.any() and data.any():
+        present = np.unique(data[data != 0])
+        shown = present[:10].tolist()
+        from pipeline.errors import InputError
+
+        raise InputError(f"{name}: label values {tuple(labels)} asked for, but the mask holds "
+                         f"only {shown}", path=name)
+    return selected
+
+
+def structure(connectivity: int) -> np.ndarray:
+    """3x3x3 neighbourhood for 6-, 18- or 26-connectivity.
+
+    >>> [int(structure(c).sum()) for c in (6, 18, 26)]
+    [7, 19, 27]
+    """
+    from scipy import ndimage
+
+    rank = {6: 1, 18: 2, 26: 3}[connectivity]
+    return ndimage.generate_binary_structure(3, rank)
+
+
+def bounding_box(mask: np.ndarray) -> tuple[slice, slice, slice] | None:
+    """Smallest box holding every True voxel, or None for an empty mask."""
+    boxes = []
+    for axis in range(3):
+        others = tuple(a for a in range(3) if a != axis)
+        hit = np.flatnonzero(mask.any(axis=others))
+        if hit.size == 0:
+            return None
+        boxes.append(slice(int(hit[0]), int(hit[-1]) + 1))
+    return (boxes[0], boxes[1], boxes[2])
+
+
+def axial_axis(affine: np.ndarray) -> int:
+    """Voxel axis whose direction is closest to the world superior-inferior (z) axis.
+
+    >>> axial_axis(np.diag([1.0, 1.0, 3.0, 1.0]))
+    2
+    >>> axial_axis(np.array([[0, 0, 1, 0], [1, 0, 0, 0], [0, 1, 0, 0], [0, 0, 0, 1.0]]))
+    1
+    """
+    columns = np.asarray(affine, dtype=float)[:3, :3]
+    cosine = np.abs(columns[2]) / np.linalg.norm(columns, axis=0)
+    return int(np.argmax(cosine))
+
+
+def max_in_plane_distance(points_ij: np.ndarray, columns: np.ndarray) -> float:
+    """Largest world distance between voxel centres of one slice.
+
+    ``points_ij`` are the (n, 2) in-slice voxel indices, ``columns`` the (3, 2) affine columns of
+    those two axes (mm per voxel step). An affine map keeps convex hulls, so only hull vertices
+    found in index space need comparing.
+
+    Examples
+    --------
+    >>> pts = np.array([[0, 0], [3, 0], [0, 4], [1, 1]])
+    >>> max_in_plane_distance(pts, np.eye(3)[:, :2])
+    5.0
+    """
+    from scipy.spatial import ConvexHull, QhullError
+    from scipy.spatial.distance import pdist
+
+    pts = np.unique(np.asarray(points_ij, dtype=float), axis=0)
+    if len(pts) < 2:
+        return 0.0
+    if len(pts) > 16:
+        try:
+            pts = pts[ConvexHull(pts).vertices]
+        except QhullError:  # collinear voxels: the ends of the line are extreme in i or j
+            ends = [pts[np.argmin(pts[:, 0])], pts[np.argmax(pts[:, 0])],
+                    pts[np.argmin(pts[:, 1])], pts[np.argmax(pts[:, 1])]]
+            pts = np.array(ends)
+    world = pts @ np.asarray(columns, dtype=float).T
+    return float(pdist(world).max())
+
+
+def max_axial_diameter(voxels: np.ndarray, affine: np.ndarray, axis: int) -> tuple[float, int]:
+    """Longest in-slice distance (mm) over the axial slices, and the number of slices spanned.
+
+    ``voxels`` are (n, 3) voxel indices of one lesion; ``axis`` the axial voxel axis.
+    """
+    in_plane = [a for a in range(3) if a != axis]
+    columns = np.asarray(affine, dtype=float)[:3, in_plane]
+    order = np.argsort(voxels[:, axis], kind="stable")
+    sorted_vox = voxels[order]
+    slices, starts = np.unique(sorted_vox[:, axis], return_index=True)
+    bounds = list(starts) + [len(sorted_vox)]
+    best = 0.0
+    for begin, end in zip(bounds[:-1], bounds[1:]):
+        best = max(best, max_in_plane_distance(sorted_vox[begin:end][:, in_plane], columns))
+    return best, len(slices)
+
+
+def label_components(lesion: np.ndarray, *, connectivity: int = 26
+                     ) -> tuple[np.ndarray, tuple[int, int, int]]:
+    """Connected components of a boolean mask, cropped to the lesion bounding box.
+
+    Components are numbered 1..n by decreasing voxel count, ties by their first voxel in
+    (i, j, k) order, so the numbering does not depend on the labelling library.
+
+    Returns
+    -------
+    components : int32 ndarray over the crop box (shape (0, 0, 0) for an empty mask)
+    offset : voxel index of the crop box's first voxel
+    """
+    from scipy import ndimage
+
+    box = bounding_box(lesion)
+    if box is None:
+        return np.zeros((0, 0, 0), dtype=np.int32), (0, 0, 0)
+    crop = np.ascontiguousarray(lesion[box])
+    raw, count = ndimage.label(crop, structure=structure(connectivity), output=np.int32)
+    flat = raw.ravel()
+    sizes = np.bincount(flat, minlength=count + 1)[1:]
+    nonzero = np.flatnonzero(flat)
+    first = np.full(count, flat.size, dtype=np.int64)
+    np.minimum.at(first, flat[nonzero] - 1, nonzero)
+    order = np.lexsort((first, -sizes))          # largest first, then earliest voxel
+    rank = np.zeros(count + 1, dtype=np.int32)
+    rank[order + 1] = np.arange(1, count + 1, dtype=np.int32)
+    return rank[raw], (box[0].start, box[1].start, box[2].start)
+
+
+def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, ...] | None = None,
+                    connectivity: int = 26, min_volume_mm3: float = 0.0,
+                    measurable_min_diameter_mm: float = 10.0, measurable_min_slices: int = 2,
+                    name: str = "mask") -> tuple[pd.DataFrame, np.ndarray, tuple[int, int, int]]:
+    """Measure every connected lesion in a label mask.
+
+    Parameters
+    ----------
+    data : (X, Y, Z) integer ndarray
+        Label mask; ``labels`` selects the lesion values (default: every non-zero value).
+    affine : (4, 4) ndarray
+        Voxel -> RAS+ world (mm).
+
+    Returns
+    -------
+    table : pandas.DataFrame
+        One row per component with the columns ``MEASURE_COLUMNS``: ``component``, ``label``
+        (the most frequent selected value), ``voxels``, ``volume_mm3`` (voxels x |det A|),
+        world centroid, ``max_axial_diameter_mm``, ``equivalent_diameter_mm`` (sphere of equal
+        volume), voxel bounding box, ``axial_slices``, ``touches_border``, ``measurable``.
+    components, offset
+        The component image over the lesion bounding box (see :func:`label_components`).
+
+    Notes
+    -----
+    ``measurable`` follows RANO-BM (Lin NU et al. Lancet Oncol 2015;16:e270-e278): longest
+    diameter >= 10 mm and visible on >= 2 axial slices. The perpendicular-diameter condition of
+    RANO-BM is not applied.
+
+    Examples
+    --------
+    >>> table, comps, offset = component_table(np.pad(np.ones((2, 2, 2), np.uint8), 1), np.eye(4))
+    >>> table.volume_mm3.tolist(), table.centroid_x_mm.tolist(), offset
+    ([8.0], [1.5], (1, 1, 1))
+    """
+    data = np.asarray(data)
+    affine = np.asarray(affine, dtype=np.float64)
+    lesion = select_labels(data, labels, name=name)
+    components, offset = label_components(lesion, connectivity=connectivity)
+    voxel_mm3 = float(abs(np.linalg.det(affine[:3, :3])))
+    rows = _measure(components, offset, data, affine, voxel_mm3)
+    table = pd.DataFrame(rows, columns=list(MEASURE_COLUMNS))
+    table = _finish(table, data.shape, measurable_min_diameter_mm, measurable_min_slices)
+    if min_volume_mm3 > 0 and len(table):
+        keep = table.volume_mm3 >= min_volume_mm3
+        if not keep.all():
+            components, table = _drop_small(components, table, keep)
+    return table, components, offset
+
+
+def _measure(components: np.ndarray, offset: tuple[int, int, int], data: np.ndarray,
+             affine: np.ndarray, voxel_mm3: float) -> list[dict]:
+    if components.size == 0:
+        return []
+    ii, jj, kk = np.nonzero(components)
+    ids = components[ii, jj, kk]
+    order = np.argsort(ids, kind="stable")
+    vox = np.stack([ii, jj, kk], axis=1)[order] + np.asarray(offset)
+    ids = ids[order]
+    values = data[vox[:, 0], vox[:, 1], vox[:, 2]]
+    starts = np.searchsorted(ids, np.arange(1, int(ids[-1]) + 2))
+    axis = axial_axis(affine)
+    rows = []
+    for c in range(1, int(ids[-1]) + 1):
+        part = vox[starts[c - 1]:starts[c]]
+        vals, counts = np.unique(values[starts[c - 1]:starts[c]], return_counts=True)
+        centre = affine[:3, :3] @ part.mean(axis=0) + affine[:3, 3]
+        diameter, slices = max_axial_diameter(part, affine, axis)
+        low, high = part.min(axis=0), part.max(axis=0)
+        rows.append({"component": c, "label": int(vals[np.argmax(counts)]),
+                     "voxels": len(part), "volume_mm3": len(part) * voxel_mm3,
+                     "centroid_x_mm": centre[0], "centroid_y_mm": centre[1],
+                     "centroid_z_mm": centre[2], "max_axial_diameter_mm": diameter,
+                     "bbox_i_min": low[0], "bbox_i_max": high[0], "bbox_j_min": low[1],
+                     "bbox_j_max": high[1], "bbox_k_min": low[2], "bbox_k_max": high[2],
+                     "axial_slices": slices})
+    return rows
+
+
+def _finish(table: pd.DataFrame, shape: tuple[int, ...], min_diameter: float,
+            min_slices: int) -> pd.DataFrame:
+    table = table.copy()
+    table["equivalent_diameter_mm"] = np.cbrt(6.0 * table.volume_mm3.astype(float) / np.pi)
+    lows = table[["bbox_i_min", "bbox_j_min", "bbox_k_min"]].to_numpy()
+    highs = table[["bbox_i_max", "bbox_j_max", "bbox_k_max"]].to_numpy()
+    edge = np.asarray(shape[:3]) - 1
+    table["touches_border"] = (lows == 0).any(axis=1) | (highs == edge).any(axis=1)
+    table["measurable"] = (table.max_axial_diameter_mm >= min_diameter) & \
+        (table.axial_slices >= min_slices)
+    for name in ("component", "label", "voxels", "axial_slices") + tuple(
+            c for c in MEASURE_COLUMNS if c.startswith("bbox")):
+        table[name] = table[name].astype("int64")
+    table["touches_border"] = table.touches_border.astype(bool)
+    table["measurable"] = table.measurable.astype(bool)
+    return table
+
+
+def _drop_small(components: np.ndarray, table: pd.DataFrame, keep: pd.Series
+                ) -> tuple[np.ndarray, pd.DataFrame]:
+    """Remove components below the minimum volume and renumber the rest 1..m in order."""
+    mapping = np.zeros(len(table) + 1, dtype=np.int32)
+    kept = table.component[keep].to_numpy()
+    mapping[kept] = np.arange(1, len(kept) + 1, dtype=np.int32)
+    table = table[keep].copy()
+    table["component"] = np.arange(1, len(kept) + 1)
+    return mapping[components], table.reset_index(drop=True)
+
+
+def scan_table(table: pd.DataFrame, *, subject: str, session: str, day: float, mask: str,
+               group: str = "") -> pd.DataFrame:
+    """Prefix a component table with the scan's identity columns (lesions.tsv rows)."""
+    out = table.copy()
+    out.insert(0, "day", float(day))
+    out.insert(0, "session", session)
+    out.insert(0, "subject", subject)
+    out["mask"] = mask
+    out["group"] = group
+    return out[list(LESION_COLUMNS)]

@@ -1,0 +1,278 @@
+"""Stage 1 against outside references: SimpleITK, analytic volumes, the NIfTI-1 standard,
+nibabel's shipped test data and the RANO-BM measurability rule."""
+from __future__ import annotations
+
+import importlib.resources
+
+import nibabel as nib
+import numpy as np
+import pytest
+import SimpleITK as sitk
+from nifti_helpers import oblique_affine, random_blobs, save_mask
+from scipy import ndimage
+from skimage.draw import ellipsoid
+
+from pipeline.io import load_mask
+from pipeline.itk_io import LPS_TO_RAS, itk_affine_ras
+from pipeline.settings import VolumeSettings
+from pipeline.volumes import component_table, max_axial_diameter
+
+
+def sitk_reference(path, connectivity_full=True):
+    """Reference: SimpleITK ConnectedComponent + LabelShapeStatisticsImageFilter, LPS -> RAS."""
+    image = sitk.ReadImage(str(path))
+    labels = sitk.ConnectedComponent(image != 0, connectivity_full)
+    stats = sitk.LabelShapeStatisticsImageFilter()
+    stats.Execute(labels)
+    rows = []
+    for label in stats.GetLabels():
+        lps = np.array(stats.GetCentroid(label) + (1.0,))
+        rows.append((stats.GetNumberOfPixels(label), stats.GetPhysicalSize(label),
+                     (LPS_TO_RAS @ lps)[:3]))
+    return sorted(rows, key=lambda r: (-r[0], tuple(np.round(r[2], 3))))
+
+
+def ours(path, **kw):
+    mask = load_mask(path)
+    table, _, _ = component_table(mask.data, mask.affine, **kw)
+    return table
+
+
+def assert_matches_sitk(path):
+    table = ours(path)
+    ref = sitk_reference(path)
+    assert len(table) == len(ref)
+    got = sorted(zip(table.voxels, table.volume_mm3,
+                     table[["centroid_x_mm", "centroid_y_mm", "centroid_z_mm"]].to_numpy()),
+                 key=lambda r: (-r[0], tuple(np.round(r[2], 3))))
+    for (n, vol, c), (rn, rvol, rc) in zip(got, ref):
+        assert n == rn
+        assert vol == pytest.approx(rvol, rel=1e-6)      # issue target: within 0.5 %
+        np.testing.assert_allclose(c, rc, atol=1e-4)      # issue target: within 0.5 mm
+
+
+@pytest.mark.parametrize("affine", [np.diag([1.0, 1.0, 1.0, 1.0]), np.diag([0.9, 0.9, 3.0, 1.0]),
+                                    oblique_affine()], ids=["iso", "aniso", "oblique"])
+def test_counts_volumes_centroids_match_simpleitk(tmp_path, affine):
+    # Reference: SimpleITK ConnectedComponent(fullyConnected=True) + LabelShapeStatistics.
+    path = save_mask(tmp_path / "m.nii.gz", random_blobs(), affine)
+    assert_matches_sitk(path)
+
+
+@pytest.mark.parametrize("codes", [(("L", "A", "S")), ("P", "S", "R"), ("I", "L", "A")])
+def test_flipped_and_permuted_storage_gives_same_lesions(tmp_path, codes):
+    # Reference: nibabel as_reoriented (same image, other storage order) and SimpleITK.
+    base = nib.Nifti1Image(random_blobs(seed=3), oblique_affine())
+    ornt = nib.orientations.ornt_transform(nib.io_orientation(base.affine),
+                                           nib.orientations.axcodes2ornt(codes))
+    moved = base.as_reoriented(ornt)
+    p1 = save_mask(tmp_path / "a.nii.gz", np.asanyarray(base.dataobj), base.affine)
+    p2 = save_mask(tmp_path / "b.nii.gz", np.asanyarray(moved.dataobj), moved.affine)
+    a, b = ours(p1), ours(p2)
+    cols = ["voxels", "volume_mm3", "centroid_x_mm", "centroid_y_mm", "centroid_z_mm"]
+    key = ["voxels", "centroid_x_mm"]
+    np.testing.assert_allclose(a.sort_values(key)[cols].to_numpy(),
+                               b.sort_values(key)[cols].to_numpy(), atol=1e-6)
+    assert_matches_sitk(p2)
+
+
+@pytest.mark.parametrize("abc", [(6, 6, 6), (12, 8, 5), (20, 15, 10)])
+def test_voxelised_ellipsoid_volume_is_analytic(abc):
+    # Reference: skimage.draw.ellipsoid and the analytic volume 4/3*pi*a*b*c.
+    # Tolerance: REFERENCES.md C23 gives worst-case voxelisation error 8 % for radius >= 5 voxels,
+    # 3 % for >= 10 voxels; we use the bound for the smallest semi-axis.
+    a, b, c = abc
+    zooms = (0.5, 0.7, 1.0)
+    solid = ellipsoid(a, b, c, spacing=zooms)
+    table, _, _ = component_table(solid.astype(np.uint8), np.diag(zooms + (1.0,)))
+    expected = 4 / 3 * np.pi * a * b * c
+    smallest_radius_voxels = min(a / zooms[0], b / zooms[1], c / zooms[2])
+    tolerance = 0.08 if smallest_radius_voxels < 10 else 0.03
+    assert len(table) == 1
+    assert table.volume_mm3[0] == pytest.approx(expected, rel=tolerance)
+    # equivalent diameter is the sphere of equal volume (definition)
+    assert table.equivalent_diameter_mm[0] == pytest.approx(
+        (6 * table.volume_mm3[0] / np.pi) ** (1 / 3))
+
+
+@pytest.mark.parametrize("unit,zoom,expected", [("meter", 0.0005, 0.25e0 * 1.0),
+                                                 ("micron", 500.0, 0.25), ("mm", 0.5, 0.25)])
+def test_spatial_units_convert_to_mm(tmp_path, unit, zoom, expected):
+    # Reference: NIfTI-1 standard xyzt_units codes (REFERENCES.md C20): pixdim
+    # (0.0005, 0.0005, 0.001) m or (500, 500, 1000) micron -> 0.25 mm^3 per voxel.
+    affine = np.diag([zoom, zoom, 2 * zoom, 1.0])
+    data = np.zeros((4, 4, 4), np.uint8)
+    data[1:3, 1:3, 1] = 1
+    path = save_mask(tmp_path / "u.nii", data, affine, units=unit)
+    mask = load_mask(path)
+    assert mask.voxel_volume_mm3 == pytest.approx(expected)
+    table, _, _ = component_table(mask.data, mask.affine)
+    assert table.volume_mm3[0] == pytest.approx(4 * expected)
+    raw = nib.load(str(path)).header["xyzt_units"] & 7
+    assert int(raw) == {"meter": 1, "mm": 2, "micron": 3}[unit]
+
+
+def test_sform_wins_over_qform_and_disagreement_warns(tmp_path):
+    # Reference: NIfTI-1 standard (method 3, sform, when sform_code > 0) and nibabel's
+    # get_best_affine; a 5 mm shift between the two is reported.
+    data = np.zeros((5, 5, 5), np.uint8)
+    data[2, 2, 2] = 1
+    image = nib.Nifti1Image(data, np.eye(4))
+    shifted = np.eye(4)
+    shifted[0, 3] = 5.0
+    image.set_sform(shifted, code=1)
+    image.set_qform(np.eye(4), code=1)
+    image.header.set_xyzt_units("mm")
+    nib.save(image, str(tmp_path / "sq.nii"))
+    mask = load_mask(tmp_path / "sq.nii")
+    assert mask.affine[0, 3] == 5.0
+    assert any("disagree by 5 mm" in w for w in mask.warnings)
+    # qform only (sform_code 0): method 2, the qform is used
+    image.set_sform(shifted, code=0)
+    nib.save(image, str(tmp_path / "q.nii"))
+    assert load_mask(tmp_path / "q.nii").affine[0, 3] == 0.0
+
+
+def test_unknown_orientation_is_refused_unless_accepted(tmp_path):
+    # Reference: NIfTI-1 standard method 1 (both codes 0) carries no orientation.
+    path = save_mask(tmp_path / "o.nii", np.ones((2, 2, 2), np.uint8), np.eye(4),
+                     qform=False, sform=False)
+    with pytest.raises(ValueError, match="orientation unknown"):
+        load_mask(path)
+    assert load_mask(path, settings=VolumeSettings(accept_unknown_orientation=True)).warnings
+
+
+def nibabel_data(name):
+    folder = importlib.resources.files("nibabel") / "tests" / "data"
+    path = folder / name
+    if not path.is_file():
+        pytest.skip(f"nibabel test data {name} is not shipped in this installation")
+    return path
+
+
+@pytest.mark.parametrize("connectivity,rank", [(6, 1), (26, 3)])
+def test_nibabel_standard_mask(connectivity, rank):
+    # Reference: nibabel's shipped test file standard.nii.gz (MIT licence), counted with
+    # scipy.ndimage.label and the matching structure; volume = voxels x prod(zooms).
+    path = nibabel_data("standard.nii.gz")
+    image = nib.load(str(path))
+    data = np.asanyarray(image.dataobj)
+    _, expected = ndimage.label(data != 0, ndimage.generate_binary_structure(3, rank))
+    table = ours(path, connectivity=connectivity)
+    assert len(table) == expected
+    assert table.volume_mm3.sum() == pytest.approx((data != 0).sum() *
+                                                   np.prod(image.header.get_zooms()))
+
+
+def test_nibabel_anatomical_is_read_in_stored_integer_type_and_matches_simpleitk():
+    # Reference: nibabel's shipped anatomical.nii (big-endian int16, LAS) read by SimpleITK.
+    path = nibabel_data("anatomical.nii")
+    mask = load_mask(path)
+    assert mask.data.dtype.kind == "i"
+    image = sitk.ReadImage(str(path))
+    np.testing.assert_allclose(itk_affine_ras(image), mask.affine, atol=1e-4)
+    np.testing.assert_array_equal(sitk.GetArrayFromImage(image).transpose(2, 1, 0), mask.data)
+
+
+def test_nibabel_functional_scaled_4d_is_refused():
+    # Reference: nibabel's shipped functional.nii is a 4-D, scaled image: not a mask.
+    with pytest.raises(ValueError, match="volumes"):
+        load_mask(nibabel_data("functional.nii"))
+
+
+def test_nifti2_is_read(tmp_path):
+    # Reference: nibabel's shipped example_nifti2.nii.gz (NIfTI-2, shape (32, 20, 12, 2)): its
+    # 64-bit dims are parsed (refused as 2 volumes); a NIfTI-2 mask gives the NIfTI-1 result.
+    with pytest.raises(ValueError, match="2 volumes"):
+        load_mask(nibabel_data("example_nifti2.nii.gz"))
+    data, affine = random_blobs(seed=2), oblique_affine()
+    one = save_mask(tmp_path / "one.nii.gz", data, affine)
+    two = nib.Nifti2Image(data, affine)
+    two.set_qform(affine, code=1)
+    two.header.set_xyzt_units("mm")
+    nib.save(two, str(tmp_path / "two.nii.gz"))
+    assert nib.load(str(tmp_path / "two.nii.gz")).header.sizeof_hdr == 540
+    a, b = ours(one), ours(tmp_path / "two.nii.gz")
+    np.testing.assert_allclose(a.drop(columns=[]).to_numpy(float), b.to_numpy(float))
+
+
+@pytest.mark.parametrize("length_voxels,slices,measurable", [
+    (11, 2, True),    # centres 10 mm apart on 2 slices: measurable
+    (10, 2, False),   # 9 mm: below the 10 mm threshold
+    (11, 1, False),   # one slice only
+])
+def test_rano_bm_measurability(length_voxels, slices, measurable):
+    # Reference: RANO-BM (Lin NU et al. Lancet Oncol 2015;16:e270-e278): measurable lesion =
+    # longest diameter >= 10 mm and visible on >= 2 axial slices.
+    data = np.zeros((20, 20, 6), np.uint8)
+    data[2:2 + length_voxels, 5, 1:1 + slices] = 1
+    table, _, _ = component_table(data, np.eye(4))
+    assert table.measurable[0] == measurable
+    assert table.max_axial_diameter_mm[0] == pytest.approx(length_voxels - 1)
+    assert table.axial_slices[0] == slices
+
+
+def test_max_axial_diameter_matches_brute_force_on_oblique_grid():
+    # Reference: brute-force largest pairwise distance (scipy.spatial.distance.pdist) per slice.
+    from scipy.spatial.distance import pdist
+
+    data = random_blobs(count=1, seed=5)
+    affine = oblique_affine()
+    vox = np.argwhere(data)
+    got, _ = max_axial_diameter(vox, affine, axis=2)
+    best = 0.0
+    for k in np.unique(vox[:, 2]):
+        pts = vox[vox[:, 2] == k]
+        if len(pts) > 1:
+            best = max(best, pdist(pts @ affine[:3, :3].T).max())
+    assert got == pytest.approx(best)
+
+
+@pytest.mark.parametrize("offset,expected", [((1, 1, 1), {6: 2, 18: 2, 26: 1}),
+                                             ((1, 1, 0), {6: 2, 18: 1, 26: 1})])
+def test_connectivity(offset, expected):
+    # Reference: REFERENCES.md C25 (corner- and edge-touching voxel pairs), scipy.ndimage.label.
+    data = np.zeros((4, 4, 4), np.uint8)
+    data[1, 1, 1] = 1
+    data[1 + offset[0], 1 + offset[1], 1 + offset[2]] = 1
+    for conn, count in expected.items():
+        table, _, _ = component_table(data, np.eye(4), connectivity=conn)
+        assert len(table) == count
+
+
+def test_labels_are_merged_before_labelling_and_label_is_the_mode():
+    # Common practice: an enhancing rim (1) and a necrotic core (3) are one lesion.
+    data = np.zeros((9, 9, 9), np.uint8)
+    data[2:7, 2:7, 2:7] = 1
+    data[3:6, 3:6, 3:6] = 3
+    table, _, _ = component_table(data, np.eye(4), labels=(1, 3))
+    assert len(table) == 1 and table.label[0] == 1 and table.voxels[0] == 125
+    only_core, _, _ = component_table(data, np.eye(4), labels=(3,))
+    assert only_core.voxels[0] == 27
+
+
+def test_min_volume_drops_and_renumbers():
+    data = np.zeros((10, 10, 10), np.uint8)
+    data[1, 1, 1] = 1
+    data[5:8, 5:8, 5:8] = 1
+    table, comps, _ = component_table(data, np.diag([2.0, 2.0, 2.0, 1.0]), min_volume_mm3=10)
+    assert table.component.tolist() == [1] and table.voxels.tolist() == [27]
+    assert set(np.unique(comps)) == {0, 1}
+
+
+def test_empty_mask_has_no_rows():
+    table, comps, offset = component_table(np.zeros((3, 3, 3), np.uint8), np.eye(4))
+    assert len(table) == 0 and comps.shape == (0, 0, 0)
+
+
+def test_components_numbered_largest_first_and_border_flag():
+    data = np.zeros((10, 10, 10), np.uint8)
+    data[0:2, 0:2, 0:2] = 1          # 8 voxels touching the border
+    data[4:7, 4:7, 4:7] = 1          # 27 voxels inside
+    table, comps, offset = component_table(data, np.eye(4))
+    assert table.voxels.tolist() == [27, 8]
+    assert table.touches_border.tolist() == [False, True]
+    full = np.zeros_like(data, dtype=np.int32)
+    full[offset[0]:offset[0] + comps.shape[0], offset[1]:offset[1] + comps.shape[1],
+         offset[2]:offset[2] + comps.shape[2]] = comps
+    assert (full[4:7, 4:7, 4:7] == 1).all() and (full[0:2, 0:2, 0:2] == 2).all()
