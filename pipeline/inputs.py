@@ -149,6 +149,19 @@ def parse_when(value: str, kind: str) -> float:
     return (moment - datetime(1, 1, 1)).total_seconds() / 86400.0
 
 
+def subject_origins(scans: list[Scan]) -> dict[str, float]:
+    """Each subject's day-0 moment (earliest parseable date or day among its rows), in the units of
+    :func:`parse_when`, for turning event dates into days."""
+    origins: dict[str, float] = {}
+    for scan in scans:
+        try:
+            value = parse_when(scan.extra.get("when", ""), scan.extra.get("kind", "date"))
+        except ValueError:
+            continue
+        origins[scan.subject] = min(origins.get(scan.subject, value), value)
+    return origins
+
+
 def finish_scans(scans: list[Scan]) -> list[Scan]:
     """Days from each subject's first session; refuse duplicated sessions and shared days."""
     when: list[float] = []

@@ -277,7 +277,8 @@ def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *
     ``affine`` is the voxel -> world affine in the unit named by ``units_code`` (NIfTI-1 spatial
     unit code; 2 = mm), so a track image copies its input mask's geometry exactly.
     """
-    dtype = label_dtype(int(labels.max(initial=0)))
+    kept = labels.dtype in (np.dtype(np.uint8), np.dtype(np.int16), np.dtype(np.int32))
+    dtype = labels.dtype if kept else label_dtype(int(labels.max(initial=0)))
     header = nib.Nifti1Header()
     header.set_data_dtype(dtype)
     image = nib.Nifti1Image(np.asarray(labels, dtype=dtype), affine, header=header)

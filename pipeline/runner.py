@@ -66,8 +66,12 @@ def as_given(text: str, scan: Scan) -> str:
 
 def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: int = 1,
                 scheduler: str | None = None, progress: Callable[[int, int], None] | None = None,
-                use_cache: bool = True) -> Stage1:
-    """Stage 1 over every scan of INPUT; writes lesions.tsv, masks.tsv and errors.tsv."""
+                use_cache: bool = True, write: bool = True) -> Stage1:
+    """Stage 1 over every scan of INPUT; writes lesions.tsv, masks.tsv and errors.tsv.
+
+    With ``write=False`` nothing is written (used to rebuild stage 1 from the cache for
+    ``match OUT``).
+    """
     scans, kind = read_inputs(input_path, desc=config.volumes.desc)
     stage = Stage1(scans=scans, kind=kind)
     for scan in scans:
@@ -89,7 +93,8 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
         if progress:
             progress(done, len(tasks))
     stage.lesions, stage.masks = _stage1_tables(stage)
-    write_stage1(stage, out)
+    if write:
+        write_stage1(stage, out)
     return stage
 
 

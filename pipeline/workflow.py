@@ -156,3 +156,191 @@ def write_dataset_description(out: Path) -> None:
         "GeneratedBy": [{"Name": "lesion-growth", "Version": __version__,
                          "Description": "Lesion volumes, tracks and growth-law fits. "
                                         + DISCLAIMER}]})
+
+
+def _read_corrections(path: Path | None) -> pd.DataFrame | None:
+    from pipeline.tables import read_table
+
+    if path is None:
+        return None
+    if not Path(path).is_file():
+        raise UsageError(f"{path}: corrections file not found")
+    table = read_table(path, text_columns=("subject", "session", "lesion", "note"))
+    missing = [c for c in ("subject", "session", "component", "lesion") if c not in table.columns]
+    if missing:
+        raise UsageError(f"{path}: corrections table lacks column(s) {', '.join(missing)}")
+    return table
+
+
+def _events(path: Path | None, stage: Stage1, errors: list[dict]) -> pd.DataFrame | None:
+    from pipeline.inputs import subject_origins
+    from pipeline.later_stages import read_events
+
+    if path is None:
+        return None
+    if not Path(path).is_file():
+        raise UsageError(f"{path}: events file not found")
+    events, problems = read_events(Path(path), subject_origins(stage.scans),
+                                   {s.subject for s in stage.scans})
+    errors.extend(problems)
+    for row in problems:
+        say(f"error: sub {row['subject']}: {row['reason']}")
+    return events
+
+
+def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
+                  corrections: Path | None) -> tuple[list[dict], dict[str, Path | None]]:
+    """Stages 2 and 3 and the report after stage 1; returns new error rows and files used."""
+    from pipeline.later_stages import run_fitting, run_matching
+
+    errors: list[dict] = []
+    table = _read_corrections(corrections)
+    errors += run_matching(stage, out, config=config, corrections=table)
+    run_fitting(out, config=config, events=_events(events, stage, errors))
+    return errors, {"events": events, "corrections": corrections}
+
+
+def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None = None,
+            events: Path | None = None, corrections: Path | None = None, workers: int = 1,
+            scheduler: str | None = None, quiet: bool = False) -> int:
+    """``lesion-growth run``: every stage, every output; provenance.json is written last."""
+    started = _now()
+    with locked(out):
+        stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
+                            progress=Progress("masks", quiet=quiet))
+        _report_stage1(stage)
+        errors, files = _later_stages(stage, out, config=config, events=events,
+                                      corrections=corrections)
+        write_errors(stage.errors + errors, out)
+        write_dataset_description(out)
+        report = _report(out, config)
+        write_provenance(out, input=input, kind=stage.kind, config=config,
+                         config_path=config_path, stage=stage, started=started,
+                         extra_files=files)
+    _final_lines(out, stage, errors, report)
+    return 1 if stage.errors or errors else 0
+
+
+def _report(out: Path, config: Config) -> Path | None:
+    from pipeline.report import write_report
+
+    return write_report(out, settings=config.report)
+
+
+def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | None) -> None:
+    scans = len(stage.scans)
+    failed = len({(e["subject"], e["session"]) for e in stage.errors})
+    say(f"processed {scans} scans ({stage.recomputed} computed, "
+        f"{sum(1 for r in stage.results.values() if r.cached)} reused from an earlier run); "
+        f"{failed} failed" + (f", {len(errors)} later-stage problem(s)" if errors else ""))
+    say(f"wrote lesions.tsv, masks.tsv, matches.tsv, longitudinal.tsv, fits.tsv, group_fits.tsv, "
+        f"tracks/, errors.tsv, provenance.json in {out}")
+    if report is not None:
+        say(f"report: {report}")
+    say(DISCLAIMER)
+
+
+def _rebuild_stage1(out: Path, config: Config) -> tuple[Stage1, dict]:
+    """Stage 1 of an earlier run, from its inputs and cache, without rewriting its tables."""
+    from pipeline.later_stages import load_provenance
+
+    provenance = load_provenance(out)
+    source = Path(provenance["input"]["path"])
+    if not source.exists():
+        raise UsageError(f"{out}: the input of the earlier run ({source}) is not reachable from "
+                         "here; run from the same folder, or rerun 'lesion-growth run'")
+    stage = run_volumes(source, out, config=config, write=False)
+    return stage, provenance
+
+
+def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
+    return [e for e in read_errors(out) if e.get("stage") not in stages]
+
+
+def match_only(out: Path, *, config: Config, corrections: Path | None = None) -> int:
+    """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections)."""
+    from pipeline.later_stages import run_matching
+
+    with locked(out):
+        stage, _ = _rebuild_stage1(out, config)
+        errors = run_matching(stage, out, config=config,
+                              corrections=_read_corrections(corrections))
+        kept = _keep_errors(out, ("match",))
+        write_errors(kept + errors, out)
+    say(f"wrote matches.tsv, longitudinal.tsv and tracks/ in {out}"
+        + (f" (with corrections from {corrections})" if corrections else ""))
+    return 1 if kept or errors else 0
+
+
+def fit_only(out: Path, *, config: Config, events: Path | None = None) -> int:
+    """``lesion-growth fit OUT``: stage 3 again on longitudinal.tsv."""
+    from pipeline.later_stages import run_fitting
+
+    if not (out / "longitudinal.tsv").exists():
+        raise UsageError(f"{out}: no longitudinal.tsv; run 'lesion-growth match' or 'run' first")
+    with locked(out):
+        errors: list[dict] = []
+        table = None
+        if events is not None:
+            stage, _ = _rebuild_stage1(out, config)
+            table = _events(events, stage, errors)
+        run_fitting(out, config=config, events=table)
+        kept = _keep_errors(out, ("events", "fit"))
+        write_errors(kept + errors, out)
+    say(f"wrote fits.tsv and group_fits.tsv in {out}")
+    return 1 if kept or errors else 0
+
+
+def report_only(out: Path, *, config: Config) -> int:
+    if not out.is_dir():
+        raise UsageError(f"{out}: output folder not found")
+    path = _report(out, config)
+    say(f"report: {path}")
+    say(DISCLAIMER)
+    return 0
+
+
+def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase: str | None,
+                  model: str, positive: str | None) -> int:
+    """``lesion-growth evaluate``: evaluation.tsv (+ evaluation_thresholds.tsv)."""
+    from pipeline import evaluate
+    from pipeline.tables import read_table, write_sidecar, write_table
+
+    if not (out / "fits.tsv").exists():
+        raise UsageError(f"{out}: no fits.tsv; run 'lesion-growth fit' or 'run' first")
+    if not Path(outcomes).is_file():
+        raise UsageError(f"{outcomes}: outcomes file not found")
+    fits = read_table(out / "fits.tsv")
+    table = read_table(outcomes, text_columns=("subject", "outcome"))
+    try:
+        result = evaluate.evaluate_marker(fits, table, figures=figures, phase=phase, model=model,
+                                          positive=positive)
+        thresholds = evaluate.threshold_table(fits, table, figures=figures, phase=phase,
+                                              model=model, positive=positive)
+    except ValueError as exc:
+        raise UsageError(f"{outcomes}: {exc}") from None
+    write_table(result, out / "evaluation.tsv")
+    write_table(thresholds, out / "evaluation_thresholds.tsv")
+    doc = getattr(evaluate, "COLUMNS", None)
+    if isinstance(doc, dict):
+        write_sidecar(out / "evaluation.tsv", doc)
+    say(f"wrote evaluation.tsv in {out}")
+    return 0
+
+
+def run_demo(out: Path, *, workers: int = 1, quiet: bool = False) -> int:
+    """``lesion-growth demo OUT``: invent the demo cohort under OUT/inputs and run everything."""
+    from pipeline.config import load_config
+    from pipeline.demo import make_demo_inputs
+
+    t0 = time.perf_counter()
+    demo = make_demo_inputs(out / "inputs")
+    say(f"demo cohort (invented) written to {out / 'inputs'} in {time.perf_counter() - t0:.1f} s")
+    code = run_all(demo.manifest, out, config=load_config(None), events=demo.events,
+                   workers=workers, quiet=quiet)
+    evaluate_only(out, demo.outcomes, figures=("beta",), phase=None, model="power",
+                  positive=None)
+    _report(out, load_config(None))
+    say(f"demo finished in {time.perf_counter() - t0:.1f} s; the demo includes one deliberately "
+        "broken scan, so errors.tsv has a row and the exit status is 1")
+    return code

@@ -1,0 +1,156 @@
+"""Stage-1 speed and memory next to the read floor and two other ways of doing the same job.
+
+Run: python benchmarks/volumes.py [--repeats 5] [--scaling-masks 24]
+
+Generates its own masks (invented blobs), then for each size times, in one process:
+  floor     nibabel.load + np.asanyarray(img.dataobj)                 (what reading costs)
+  tool      lesion-growth's stage 1 for one mask (read + every lesion figure)
+  scipy     get_fdata + scipy.ndimage.label (26-conn) + one pass per label (naive script)
+  sitk      SimpleITK ReadImage + ConnectedComponent + LabelShapeStatistics
+checks that all agree on component count and voxel counts, and prints medians, min-max, ratios
+to the floor and peak memory per voxel of the tool (tracemalloc). Then masks per second with 1 and
+2 worker processes. The last line states the ratios. Figures, not a test: nothing here asserts speed.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import statistics
+import sys
+import tempfile
+import time
+import tracemalloc
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from pipeline.batch import run_tasks, volumes_task  # noqa: E402
+from pipeline.settings import VolumeSettings  # noqa: E402
+
+
+def make_mask(shape, seed, count=12):
+    rng = np.random.default_rng(seed)
+    data = np.zeros(shape, np.uint8)
+    for _ in range(count):
+        radius = rng.uniform(2, 12)
+        centre = rng.uniform(radius + 1, np.asarray(shape) - radius - 1)
+        lo = np.maximum(np.floor(centre - radius).astype(int), 0)
+        hi = np.minimum(np.ceil(centre + radius).astype(int) + 1, shape)
+        grid = np.ogrid[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]]
+        ball = sum((g - c) ** 2 for g, c in zip(grid, centre)) <= radius ** 2
+        data[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]][ball] = 1
+    return data
+
+
+def save(path, data):
+    image = nib.Nifti1Image(data, np.diag([0.9, 0.9, 1.0, 1.0]))
+    image.set_qform(image.affine, 1)
+    image.header.set_xyzt_units("mm")
+    nib.save(image, str(path))
+
+
+def floor(path):
+    image = nib.load(str(path))
+    return np.asanyarray(image.dataobj)
+
+
+def tool(path):
+    result = volumes_task("b", "1", str(path), None, VolumeSettings())
+    assert result.ok, result.error
+    return sorted(result.table.voxels.tolist())
+
+
+def naive_scipy(path):
+    from scipy import ndimage
+
+    data = nib.load(str(path)).get_fdata()
+    labels, count = ndimage.label(data > 0, np.ones((3, 3, 3)))
+    return sorted(int((labels == c).sum()) for c in range(1, count + 1))
+
+
+def simpleitk(path):
+    import SimpleITK as sitk
+
+    image = sitk.ReadImage(str(path))
+    labels = sitk.ConnectedComponent(image != 0, True)
+    stats = sitk.LabelShapeStatisticsImageFilter()
+    stats.Execute(labels)
+    return sorted(stats.GetNumberOfPixels(c) for c in stats.GetLabels())
+
+
+def timed(func, path, repeats):
+    times, result = [], None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        result = func(path)
+        times.append(time.perf_counter() - t0)
+    return times, result
+
+
+def peak_bytes(func, path):
+    tracemalloc.start()
+    func(path)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return peak
+
+
+def one_size(shape, folder, repeats):
+    path = folder / f"mask_{'x'.join(map(str, shape))}.nii.gz"
+    save(path, make_mask(shape, seed=sum(shape)))
+    rows, results = {}, {}
+    for name, func in (("floor", floor), ("tool", tool), ("scipy", naive_scipy),
+                       ("sitk", simpleitk)):
+        rows[name], results[name] = timed(func, path, repeats if name != "scipy" else 1)
+    agree = results["tool"] == results["scipy"] == results["sitk"]
+    base = statistics.median(rows["floor"])
+    voxels = int(np.prod(shape))
+    print(f"\n{shape[0]}x{shape[1]}x{shape[2]} uint8, {len(results['tool'])} lesions, "
+          f"all methods agree: {agree}")
+    for name, times in rows.items():
+        med = statistics.median(times)
+        print(f"  {name:6s} median {med:8.4f} s  min-max {min(times):.4f}-{max(times):.4f} s  "
+              f"ratio to floor {med / base:6.2f}x")
+    per_voxel = peak_bytes(tool, path) / voxels
+    print(f"  tool peak traced memory {per_voxel:.2f} bytes/voxel")
+    if not agree:
+        raise SystemExit("methods disagree: the benchmark's figures are not comparable")
+    return statistics.median(rows["tool"]) / base, per_voxel, path
+
+
+def scaling(path, count):
+    tasks = [(volumes_task, ("b", str(i), str(path), None, VolumeSettings()))
+             for i in range(count)]
+    rates = {}
+    for workers in (1, 2):
+        t0 = time.perf_counter()
+        for _, result in run_tasks(tasks, workers=workers):
+            assert result.ok
+        rates[workers] = count / (time.perf_counter() - t0)
+        print(f"  {workers} worker(s): {rates[workers]:.2f} masks/s")
+    return rates[2] / rates[1]
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--scaling-masks", type=int, default=24)
+    parser.add_argument("--small-only", action="store_true", help="skip 512x512x300")
+    args = parser.parse_args()
+    print(f"cores: {os.cpu_count()}; numpy {np.__version__}; nibabel {nib.__version__}")
+    shapes = [(256, 256, 160)] + ([] if args.small_only else [(512, 512, 300)])
+    with tempfile.TemporaryDirectory() as tmp:
+        figures = [one_size(shape, Path(tmp), args.repeats) for shape in shapes]
+        print(f"\nscaling over {args.scaling_masks} masks of {shapes[0]}:")
+        speedup = scaling(figures[0][2], args.scaling_masks)
+    parts = [f"{'x'.join(map(str, s))}: {r:.2f}x floor, {m:.2f} B/voxel"
+             for s, (r, m, _) in zip(shapes, figures)]
+    print(f"volumes: {'; '.join(parts)}; 2 workers {speedup:.2f}x 1 worker "
+          "(targets: <= 1.25x floor, <= 3 B/voxel, >= 1.8x)")
+
+
+if __name__ == "__main__":
+    main()
