@@ -111,3 +111,35 @@ def _coerce(value: Any, kind: Any, name: str, where: str) -> Any:
         return value
     raise ConfigError(f"{name} must be {getattr(kind, '__name__', kind)}, got {value!r} "
                       f"(in {where})")
+
+
+def default_toml() -> str:
+    """``configs/default.toml`` rendered from the settings dataclasses and their unit comments."""
+    import inspect
+    import re
+
+    lines = ["# lesion-growth default configuration: every setting with its unit and default.",
+             "# Copy what you want to change into your own file and pass it with --config;",
+             "# keys you leave out keep these values. Research use only; not a medical device.", ""]
+    for section in dataclasses.fields(Config):
+        cls = section.type if isinstance(section.type, type) else typing.get_type_hints(Config)[
+            section.name]
+        source = inspect.getsource(cls)
+        comments = dict(re.findall(r"^\s+(\w+):[^=\n]+=[^#\n]*#\s*(.*)$", source, flags=re.M))
+        lines += [f"[{section.name}]  # {cls.__doc__.splitlines()[0]}"]
+        for field in dataclasses.fields(cls):
+            value = getattr(cls(), field.name)
+            note = comments.get(field.name, "")
+            lines.append(f"{field.name} = {_toml_value(value)}" + (f"  # {note}" if note else ""))
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (tuple, list)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, str):
+        return json.dumps(value)
+    return repr(value)

@@ -42,8 +42,9 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
         rows = stage.lesions[stage.lesions.subject == subject]
         mine = None if corrections is None else corrections[corrections.subject == subject]
         try:
+            transforms = _register(stage, subject, scans) if config.matching.register else None
             result = matching.match_subject(scans, rows, settings=config.matching,
-                                            corrections=mine)
+                                            corrections=mine, transforms=transforms)
         except (ValueError, KeyError) as exc:
             errors.append({"subject": subject, "session": "", "path": "", "stage": "match",
                            "reason": f"matching failed: {exc}"})
@@ -67,18 +68,37 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
 def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
     from pipeline import matching
 
-    columns = getattr(matching, "MATCH_COLUMNS", None)
     for name in ("matches", "longitudinal"):
         frames = [f for f in parts[name] if len(f)]
         table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
             columns=_contract_columns(name))
         write_table(table, out / f"{name}.tsv", columns=_contract_columns(name))
-        sidecar = getattr(matching, f"{name.upper()}_COLUMNS_DOC", None) or \
-            getattr(matching, "COLUMNS", {}).get(name) if isinstance(
-                getattr(matching, "COLUMNS", None), dict) else None
-        if sidecar:
-            write_sidecar(out / f"{name}.tsv", sidecar)
-    del columns
+        write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
+
+
+def _register(stage: Stage1, subject: str, scans: list[LabelledScan]) -> dict[str, np.ndarray]:
+    """Rigid transforms of each session's image onto the subject's first session's image."""
+    import nibabel as nib
+
+    from pipeline.registration import rigid_register
+
+    images = {s.session: s.image_path for s in stage.scans if s.subject == subject}
+    first = scans[0]
+    if images.get(first.session) is None:
+        raise ValueError("matching.register needs an image for every session (manifest 'image')")
+    fixed = nib.load(str(images[first.session]))
+    transforms = {}
+    for scan in scans[1:]:
+        path = images.get(scan.session)
+        if path is None:
+            raise ValueError(f"matching.register: session {scan.session} has no image")
+        moving = nib.load(str(path))
+        result = rigid_register(np.asanyarray(fixed.dataobj, dtype=np.float32), fixed.affine,
+                                np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine)
+        say(f"note: sub {subject} ses {scan.session}: rigid registration quality "
+            f"{result.quality:.3f} (before {result.quality_before:.3f})")
+        transforms[scan.session] = result.matrix_ras
+    return transforms
 
 
 def _contract_columns(name: str) -> tuple[str, ...]:

@@ -46,16 +46,16 @@ class MatchSettings:
 
     max_gap: int = 2                  # sessions a lesion may be absent and keep its id
     weight_overlap: float = 0.5       # score weight of the Dice overlap (unitless)
-    weight_inside: float = 0.25       # score weight of "a centroid lies inside the other" (unitless)
+    weight_inside: float = 0.25       # score weight of "a centroid lies inside the other"
     weight_distance: float = 0.25     # score weight of centroid closeness (unitless)
     max_distance_ratio: float = 1.5   # gate: centroid distance / equivalent radius for pairs
     #                                   without overlap (unitless)
     max_distance_mm: float = 30.0     # gate: centroid distance for pairs without overlap (mm)
     min_radius_mm: float = 2.0        # floor of the equivalent radius in distance ratios (mm)
-    ambiguity_margin: float = 0.1     # review a link when a rival link scores within this (unitless)
+    ambiguity_margin: float = 0.1     # review a link when a rival scores within this (unitless)
     review_min_overlap: float = 0.1   # review a link with Dice below this and no centroid inside
     review_max_distance_ratio: float = 1.0  # review a link whose distance ratio exceeds this
-    misregistration_mm: float = 3.0   # warn when a session's matched lesions share a shift > this (mm)
+    misregistration_mm: float = 3.0   # warn when a session's lesions share a shift above this (mm)
     misregistration_min_pairs: int = 2  # matched pairs needed before a common shift is judged
     register: bool = False            # rigid registration of each session's image to the first's
     registration_iterations: int = 100  # optimizer iterations per pyramid level (4/2/1)
@@ -85,16 +85,16 @@ class FitSettings:
     """Stage 3: growth-law fitting."""
 
     models: tuple[str, ...] = ("power", "exponential", "gompertz", "logistic", "surface")
-    beta_bounds: tuple[float, float] = (-1.0, 3.0)   # power-law exponent beta (unit-free)
-    max_rate_per_day: float = 2.0     # |k| (initial specific growth rate), logistic |r|, Gompertz c (1/day)
-    beta_grid_step: float = 0.1       # spacing of the beta profile grid (unit-free); starts for the fit
-    measurement_error: float = 0.0    # SD of log-volume error (~relative error, 0.1 = 10 %); 0 = unknown
-    confidence: float = 0.95          # level of beta intervals and forecast prediction intervals (0-1)
-    max_beta_ci_width: float = 1.0    # beta interval wider than this (unit-free) -> note "beta not pinned down"
-    from_nadir: bool = True           # after an event, fit from the phase's smallest volume on (regrowth)
-    fit_merged_sum: bool = False      # keep a survivor's rows after a merge (volume = sum of the parents)
-    detection_limit_mm3: float = 0.0  # volumes > 0 but <= this (mm^3) are left out as below-detection
-    forecast_days: float = 90.0       # forecast horizon after the phase's last fitted session (days)
+    beta_bounds: tuple[float, float] = (-1.0, 3.0)  # power-law exponent beta (unit-free)
+    max_rate_per_day: float = 2.0     # bound of |k|, logistic |r|, Gompertz c (1/day)
+    beta_grid_step: float = 0.1       # spacing of the beta profile grid (unit-free)
+    measurement_error: float = 0.0    # SD of ln-volume error (0.1 ~ 10 %); 0 = estimate it
+    confidence: float = 0.95          # level of beta and forecast intervals (0-1)
+    max_beta_ci_width: float = 1.0    # wider beta interval -> note 'not pinned down' (unit-free)
+    from_nadir: bool = True           # after an event, fit from the phase's nadir on (regrowth)
+    fit_merged_sum: bool = False      # fit a survivor's rows after a merge (summed volume)
+    detection_limit_mm3: float = 0.0  # volumes in (0, this] are left out (mm^3)
+    forecast_days: float = 90.0       # forecast horizon after the last fitted session (days)
     bootstrap: int = 0                # parametric-bootstrap repeats for beta (0 = off)
     seed: int = 0                     # random seed of the bootstrap
 

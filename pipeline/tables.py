@@ -83,6 +83,8 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
 def _cell(value: object) -> object:
     if isinstance(value, bool):
         return "true" if value else "false"
+    if isinstance(value, str) and value == "":
+        return None          # written as n/a, as BIDS does for a missing value
     return value
 
 
