@@ -11,7 +11,7 @@ from pathlib import Path
 from pipeline import DISCLAIMER, __version__
 from pipeline.config import Config
 from pipeline.errors import UsageError
-from pipeline.runner import Stage1, run_volumes, say, write_json
+from pipeline.runner import Stage1, read_errors, run_volumes, say, write_errors, write_json
 
 
 @contextmanager
@@ -222,9 +222,15 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
 
 
 def _report(out: Path, config: Config) -> Path | None:
+    """Write report.html; a failure here must not lose the tables already written."""
     from pipeline.report import write_report
 
-    return write_report(out, settings=config.report)
+    try:
+        return write_report(out, settings=config.report)
+    except Exception as exc:  # the report is the last step; keep its failure to one line
+        say(f"error: report.html could not be written ({type(exc).__name__}: {exc}); the tables "
+            "in the output folder are complete")
+        return None
 
 
 def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | None) -> None:
