@@ -34,6 +34,7 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
 
     errors: list[dict] = []
     parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": [], "assignment": []}
+    registrations: list[dict] = []
     groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
     for subject in sorted({s.subject for s in stage.scans}):
         scans = stage.labelled(subject)
@@ -42,7 +43,8 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
         rows = stage.lesions[stage.lesions.subject == subject]
         mine = None if corrections is None else corrections[corrections.subject == subject]
         try:
-            transforms = _register(stage, subject, scans) if config.matching.register else None
+            transforms = _register(stage, subject, scans, config, registrations) \
+                if config.matching.register else None
             result = matching.match_subject(scans, rows, settings=config.matching,
                                             corrections=mine, transforms=transforms)
         except (ValueError, KeyError) as exc:
@@ -62,6 +64,10 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
             save_label_image(track_path(out, scan.subject, scan.session), image,
                              res.file_affine, units_code=res.units_code)
     _write_stage2(out, parts)
+    if config.matching.register:
+        write_table(pd.DataFrame(registrations, columns=list(REGISTRATION_COLUMNS)),
+                    out / "registration.tsv", columns=tuple(REGISTRATION_COLUMNS))
+        write_sidecar(out / "registration.tsv", REGISTRATION_COLUMNS)
     return errors
 
 
@@ -76,7 +82,21 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
         write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
 
 
-def _register(stage: Stage1, subject: str, scans: list[LabelledScan]) -> dict[str, np.ndarray]:
+REGISTRATION_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "session": {"Description": "Session registered onto the subject's first session"},
+    "reference_session": {"Description": "The subject's first session (fixed image)"},
+    "quality": {"Description": "Pearson correlation of the reference image with the registered "
+                "image over the reference foreground (1 = identical up to scale)", "Units": "1"},
+    "quality_before": {"Description": "The same correlation without registration", "Units": "1"},
+    "metric_value": {"Description": "Final Mattes mutual information (lower is better)"},
+    "matrix_ras": {"Description": "4x4 world -> world (RAS+ mm) matrix, 16 numbers row by row, "
+                   "mapping this session's coordinates into the reference session's"},
+}
+
+
+def _register(stage: Stage1, subject: str, scans: list[LabelledScan], config: Config,
+              rows: list[dict]) -> dict[str, np.ndarray]:
     """Rigid transforms of each session's image onto the subject's first session's image."""
     import nibabel as nib
 
@@ -94,7 +114,15 @@ def _register(stage: Stage1, subject: str, scans: list[LabelledScan]) -> dict[st
             raise ValueError(f"matching.register: session {scan.session} has no image")
         moving = nib.load(str(path))
         result = rigid_register(np.asanyarray(fixed.dataobj, dtype=np.float32), fixed.affine,
-                                np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine)
+                                np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine,
+                                iterations=config.matching.registration_iterations,
+                                bins=config.matching.registration_bins,
+                                sampling=config.matching.registration_sampling)
+        rows.append({"subject": subject, "session": scan.session,
+                     "reference_session": first.session, "quality": result.quality,
+                     "quality_before": result.quality_before,
+                     "metric_value": result.metric_value,
+                     "matrix_ras": " ".join(f"{v:.6g}" for v in result.matrix_ras.ravel())})
         say(f"note: sub {subject} ses {scan.session}: rigid registration quality "
             f"{result.quality:.3f} (before {result.quality_before:.3f})")
         transforms[scan.session] = result.matrix_ras

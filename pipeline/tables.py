@@ -37,6 +37,7 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name.split('.')[0]}.", suffix=suffix,
                                dir=path.parent)
     os.close(fd)
+    os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes 0600; outputs get the usual mode
     tmp_path = Path(tmp)
     try:
         yield tmp_path
@@ -46,6 +47,12 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     finally:
         if tmp_path.exists():
             tmp_path.unlink()
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_text(path: str | os.PathLike, text: str) -> None:

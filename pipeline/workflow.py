@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import fcntl
+import time
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
