@@ -12,6 +12,6 @@ except PackageNotFoundError:  # running from a source tree that is not installed
 
 DISCLAIMER = (
     "Research use only. Not a medical device and not intended for diagnosis, treatment or "
-    "clinical decision-making. Results must be reviewed by qualified, licensed clinicians and "
-    "used under local rules and approvals."
+    "clinical decision-making. Results must be reviewed by qualified, licensed clinicians; any "
+    "clinical decision rests with them under local rules and approvals."
 )

@@ -158,11 +158,13 @@ def check(input: Path = InputArg, config: Path | None = ConfigOpt,
 @app.command(epilog=EPILOG)
 @_guard
 def demo(out: Path = typer.Argument(..., help="Folder for the demo inputs and outputs."),
-         workers: int = WorkersOpt, quiet: bool = QuietOpt) -> None:
+         workers: int = WorkersOpt, quiet: bool = QuietOpt,
+         subjects: int = typer.Option(12, "--subjects", min=1, max=99,
+                                      help="Number of invented patients.")) -> None:
     """Make the invented demo cohort under OUT/inputs and run every stage on it."""
     from pipeline.workflow import run_demo
 
-    raise typer.Exit(run_demo(out, workers=workers, quiet=quiet))
+    raise typer.Exit(run_demo(out, workers=workers, quiet=quiet, subjects=subjects))
 
 
 def _version(value: bool) -> None:

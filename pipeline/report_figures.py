@@ -40,7 +40,8 @@ def png_data_uri(fig: Figure) -> str:
     'data:image/png;base64,'
     """
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=fig.dpi, metadata={"Software": None})
+    fig.savefig(buffer, format="png", dpi=fig.dpi, metadata={"Software": None},
+                bbox_inches="tight")
     return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
