@@ -235,6 +235,14 @@ def _report(out: Path, config: Config) -> Path | None:
         return None
 
 
+def _refresh_report(out: Path, config: Config) -> None:
+    """Rewrite report.html after a partial rerun, so the page never shows stale tables."""
+    if (out / "report.html").exists():
+        path = _report(out, config)
+        if path is not None:
+            say(f"report updated: {path}")
+
+
 def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | None) -> None:
     scans = len(stage.scans)
     failed = len({(e["subject"], e["session"]) for e in stage.errors})
@@ -275,8 +283,10 @@ def match_only(out: Path, *, config: Config, corrections: Path | None = None) ->
                               corrections=_read_corrections(corrections))
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
+        _refresh_report(out, config)
     say(f"wrote matches.tsv, longitudinal.tsv and tracks/ in {out}"
-        + (f" (with corrections from {corrections})" if corrections else ""))
+        + (f" (with corrections from {corrections})" if corrections else "")
+        + "; fits.tsv is from before: run 'lesion-growth fit' next")
     return 1 if kept or errors else 0
 
 
@@ -295,6 +305,7 @@ def fit_only(out: Path, *, config: Config, events: Path | None = None) -> int:
         run_fitting(out, config=config, events=table)
         kept = _keep_errors(out, ("events", "fit"))
         write_errors(kept + errors, out)
+        _refresh_report(out, config)
     say(f"wrote fits.tsv and group_fits.tsv in {out}")
     return 1 if kept or errors else 0
 
@@ -352,8 +363,9 @@ def run_demo(out: Path, *, workers: int = 1, quiet: bool = False, subjects: int 
     planted = {(e["subject"], e["session"]) for e in
                json.loads(Path(demo.truth).read_text())["expected"]["errors"]}
     found = {(e["subject"], e["session"]) for e in read_errors(out)}
-    say(f"demo finished in {time.perf_counter() - t0:.1f} s; errors.tsv lists the demo's "
-        f"deliberately broken scan(s) {sorted(planted)}; open {out / 'report.html'}")
+    broken = f"; errors.tsv lists the deliberately broken scan(s) {sorted(planted)}" \
+        if planted else ""
+    say(f"demo finished in {time.perf_counter() - t0:.1f} s{broken}; open {out / 'report.html'}")
     if code == 1 and found == planted:
         return 0          # only the planted failure: the demo did what it should
     return code

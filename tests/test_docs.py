@@ -20,7 +20,7 @@ def test_readme_has_exactly_two_setup_commands_and_ci_runs_the_test_one():
     demo, tests = readme_commands()
     assert "lesion-growth demo" in demo and "pytest" in tests
     ci = (ROOT / ".ci" / "run").read_text()
-    assert tests in ci.splitlines()
+    assert tests in ci.splitlines() and demo in ci.splitlines()
 
 
 def test_caution_is_in_readme_and_help(capsys):
