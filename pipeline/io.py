@@ -100,6 +100,30 @@ def _decompress(raw: bytes, name: str, limit: int | None = None) -> bytes:
         raise InputError(f"{name}: gzip data is {reason} ({exc})", path=name) from None
 
 
+def _decompress_into(raw: bytes, needed: int, name: str) -> np.ndarray:
+    """Decompress a gzip stream straight into one writable array of the declared size (no second
+    copy of the data, so peak memory stays near one byte per stored byte)."""
+    out = np.empty(needed, dtype=np.uint8)
+    stream = zlib.decompressobj(wbits=31)
+    position, pending = 0, raw
+    try:
+        while position < needed:
+            chunk = stream.decompress(pending, min(1 << 22, needed - position))
+            if not chunk:
+                if stream.eof or not stream.unconsumed_tail:
+                    break
+            out[position:position + len(chunk)] = np.frombuffer(chunk, np.uint8)
+            position += len(chunk)
+            pending = stream.unconsumed_tail
+    except zlib.error as exc:
+        reason = "truncated" if "incomplete" in str(exc) or "truncated" in str(exc) else "corrupt"
+        raise InputError(f"{name}: gzip data is {reason} ({exc})", path=name) from None
+    if position < needed and not stream.eof:
+        raise InputError(f"{name}: gzip data is truncated (stream ends after {position} of "
+                         f"{needed} bytes)", path=name)
+    return out[:position]
+
+
 def _parse_header(head: bytes, name: str) -> nib.Nifti1Header:
     if len(head) < 348:
         raise InputError(f"{name}: file is too short to hold a NIfTI header "
@@ -126,14 +150,14 @@ def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
     _check_memory(shape, dtype.itemsize, name, settings)
     affine, warnings = nifti_affine(header, name=name, settings=settings)
     units = int(header["xyzt_units"]) & 0x07
-    body = _decompress(raw, name) if gz else raw
     offset = int(header["vox_offset"])
     count = int(np.prod(shape))
     needed = offset + count * dtype.itemsize
+    body = _decompress_into(raw, needed, name) if gz else np.frombuffer(raw, np.uint8)
     if len(body) < needed:
         raise InputError(f"{name}: file is truncated: header declares {needed} bytes, "
                          f"file holds {len(body)}", path=name)
-    data = np.frombuffer(body, dtype=dtype, count=count, offset=offset).reshape(shape, order="F")
+    data = body[offset:needed].view(dtype).reshape(shape, order="F")
     slope, inter = header.get_slope_inter()
     data = integer_labels(data, slope, inter, name=name)
     return MaskImage(data=data, affine=affine, sha256=sha, warnings=tuple(warnings),
