@@ -1,7 +1,7 @@
-"""lesion-growth: lesion volumes, lesion tracks and growth-law fits from longitudinal lesion masks.
+"""lesion-growth: lesion volumes, lesion tracks and growth-law fits from longitudinal masks.
 
 Research use only. Not a medical device and not intended for diagnosis, treatment or clinical
-decision-making. Results must be reviewed by qualified, licensed clinicians and used under local rules.
+decision-making; any clinical decision rests with licensed clinicians under local rules.
 """
 from importlib.metadata import PackageNotFoundError, version as _version
 

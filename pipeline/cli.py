@@ -26,7 +26,8 @@ InputArg = typer.Argument(..., help="Manifest (.tsv/.csv: subject, session, mask
 OutOpt = typer.Option(..., "-o", "--out", help="Output folder.")
 OutArg = typer.Argument(..., help="Output folder of an earlier run.")
 ConfigOpt = typer.Option(None, "--config", help="TOML file overriding configs/default.toml.")
-WorkersOpt = typer.Option(1, "--workers", min=0, help="Processes for reading masks (0 = all cores).")
+WorkersOpt = typer.Option(1, "--workers", min=0,
+                          help="Processes for reading masks (0 = all cores).")
 SchedulerOpt = typer.Option(None, "--scheduler", help="Address of a Dask distributed scheduler "
                             "(needs lesion-growth[dask]).")
 QuietOpt = typer.Option(False, "--quiet", "-q", help="No progress display.")
@@ -34,7 +35,8 @@ EventsOpt = typer.Option(None, "--events", help="Events table (subject, date or 
                          "optional lesion) splitting series into phases.")
 CorrectionsOpt = typer.Option(None, "--corrections", help="corrections.tsv from QA review "
                               "(subject, session, component, lesion).")
-DescOpt = typer.Option(None, "--desc", help="BIDS input: pick desc-<LABEL> masks when a session has "
+DescOpt = typer.Option(None, "--desc",
+                       help="BIDS input: pick desc-<LABEL> masks when a session has "
                        "several (default: lesion).")
 ForecastOpt = typer.Option(None, "--forecast-days", help="Forecast horizon after the last "
                            "session, in days.")

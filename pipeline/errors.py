@@ -2,7 +2,8 @@
 
 ``PipelineError`` is what the command line turns into one line on stderr and an exit status.
 ``InputError`` concerns one input (one scan, one table row): the batch goes on and the input is
-listed in ``errors.tsv``. ``ConfigError`` and ``UsageError`` stop everything before any work (exit 2).
+listed in ``errors.tsv``. ``ConfigError`` and ``UsageError`` stop everything before any work
+(exit 2).
 """
 
 

@@ -1,8 +1,8 @@
 """Reading label masks and writing label images: the only place that touches image files.
 
 Masks are read in their stored integer type (never as float64), the header is honoured as the
-NIfTI-1 standard defines it (sform before qform, ``xyzt_units``, ``scl_slope``/``scl_inter``), and an
-image whose declared size exceeds the memory cap is refused before its data is decompressed.
+NIfTI-1 standard defines it (sform before qform, ``xyzt_units``, ``scl_slope``/``scl_inter``),
+and an image whose declared size exceeds the memory cap is refused before its data is decompressed.
 All geometry leaves this module as a float64 voxel -> RAS+ millimetre affine.
 """
 from __future__ import annotations
@@ -22,7 +22,7 @@ from pipeline.tables import atomic_path
 
 NIFTI_SUFFIXES = (".nii", ".nii.gz")
 ITK_SUFFIXES = (".nrrd", ".nhdr", ".mha", ".mhd")
-#: NIfTI-1 spatial unit codes (xyzt_units & 0x07) -> factor to millimetres (NIfTI-1 standard, nifti1.h)
+#: NIfTI-1 spatial unit codes (xyzt_units & 0x07) -> factor to millimetres (nifti1.h)
 UNIT_TO_MM = {0: 1.0, 1: 1000.0, 2: 1.0, 3: 0.001}
 UNIT_NAMES = {0: "unknown", 1: "meter", 2: "mm", 3: "micron"}
 

@@ -11,6 +11,7 @@ from pipeline.config import Config
 from pipeline.errors import UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
+from pipeline.volumes import LabelledScan
 
 
 def bids_name(prefix: str, value: str) -> str:

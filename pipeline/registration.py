@@ -19,8 +19,9 @@ import numpy as np
 import SimpleITK as sitk
 
 from pipeline.errors import InputError
+from pipeline.itk_io import LPS_TO_RAS, itk_affine_ras, ras_to_itk_geometry
 
-LPS = np.diag([-1.0, -1.0, 1.0, 1.0])   # RAS <-> LPS world flip (its own inverse)
+LPS = LPS_TO_RAS   # RAS <-> LPS world flip (its own inverse); one definition, in itk_io
 
 
 @dataclass(frozen=True)
@@ -52,29 +53,23 @@ def to_sitk(array: np.ndarray, affine: np.ndarray) -> sitk.Image:
     >>> image.GetSize(), np.allclose(affine_from_sitk(image), affine)
     ((4, 5, 6), True)
     """
-    affine = np.asarray(affine, dtype=float)
-    lps = LPS @ affine
-    spacing = np.linalg.norm(lps[:3, :3], axis=0)
-    direction = lps[:3, :3] / spacing
-    if not np.allclose(direction.T @ direction, np.eye(3), atol=1e-6):
+    origin, spacing, direction = ras_to_itk_geometry(affine)
+    cosines = np.asarray(direction).reshape(3, 3)
+    if not np.allclose(cosines.T @ cosines, np.eye(3), atol=1e-6):
         raise InputError("the image affine has shear; rigid registration needs orthogonal axes",
                          stage="register")
     data = np.asarray(array)
     data = data.astype(data.dtype.newbyteorder("="), copy=False)   # ITK needs native order
     image = sitk.GetImageFromArray(np.ascontiguousarray(data.transpose(2, 1, 0)))
-    image.SetSpacing(spacing.tolist())
-    image.SetDirection(direction.ravel().tolist())
-    image.SetOrigin(lps[:3, 3].tolist())
+    image.SetSpacing(spacing)
+    image.SetDirection(direction)
+    image.SetOrigin(origin)
     return image
 
 
 def affine_from_sitk(image: sitk.Image) -> np.ndarray:
-    """The voxel (x, y, z index) -> RAS+ affine of a SimpleITK image."""
-    lps = np.eye(4)
-    direction = np.array(image.GetDirection(), dtype=float).reshape(3, 3)
-    lps[:3, :3] = direction * np.array(image.GetSpacing(), dtype=float)
-    lps[:3, 3] = image.GetOrigin()
-    return LPS @ lps
+    """The voxel (x, y, z index) -> RAS+ affine of a SimpleITK image (``itk_io.itk_affine_ras``)."""
+    return itk_affine_ras(image)
 
 
 def matrix_to_ras(transform: sitk.Transform) -> np.ndarray:

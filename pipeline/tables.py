@@ -106,7 +106,8 @@ def _ordered(table: pd.DataFrame, columns: Iterable[str] | None) -> pd.DataFrame
     return table[first + rest]
 
 
-def read_table(path: str | os.PathLike, *, text_columns: Iterable[str] = ID_COLUMNS) -> pd.DataFrame:
+def read_table(path: str | os.PathLike, *,
+               text_columns: Iterable[str] = ID_COLUMNS) -> pd.DataFrame:
     """Read a TSV (or CSV, by suffix) with identifier columns kept as text.
 
     ``n/a`` and empty cells become missing values (NaN) in measurement columns and empty strings

@@ -10,6 +10,8 @@ from contextlib import contextmanager
 from datetime import UTC, datetime
 from pathlib import Path
 
+import pandas as pd
+
 from pipeline import DISCLAIMER, __version__
 from pipeline.config import Config
 from pipeline.errors import UsageError

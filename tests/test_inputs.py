@@ -112,7 +112,7 @@ def test_header_text_fields_never_reach_outputs(tmp_path):
     image.header["aux_file"] = b"MRN12345"
     image.header["intent_name"] = b"MRN12345"
     image.header.extensions.append(nib.nifti1.Nifti1Extension("comment", secret.encode()))
-    for n, day in enumerate(("2020-01-01", "2020-02-01"), start=1):
+    for n in (1, 2):
         nib.save(image, str(tmp_path / f"m{n}.nii.gz"))
     (tmp_path / "m.tsv").write_text("subject\tsession\tmask\tdate\n"
                                     "S\t1\tm1.nii.gz\t2020-01-01\nS\t2\tm2.nii.gz\t2020-02-01\n")
