@@ -225,10 +225,11 @@ def _choose_best(rows: pd.DataFrame, settings: FitSettings) -> pd.DataFrame:
     usable = ~rows["status"].isin(["failed", "not-fitted"])
     rows["akaike_weight"] = np.nan
     finite = usable & rows["aicc"].notna()
-    delta = rows["aicc"] - rows[finite].groupby("series")["aicc"].transform("min")
-    weight = np.exp(-0.5 * delta[finite])
-    total = weight.groupby(rows.loc[finite, "series"]).transform("sum")
-    rows.loc[finite, "akaike_weight"] = weight / total
+    if finite.any():
+        delta = rows["aicc"] - rows[finite].groupby("series")["aicc"].transform("min")
+        weight = np.exp(-0.5 * delta[finite])
+        total = weight.groupby(rows.loc[finite, "series"]).transform("sum")
+        rows.loc[finite, "akaike_weight"] = weight / total
     rank = rows.assign(no_aicc=~finite, order=rows["model"].map(order),
                        key=np.where(finite, rows["aicc"], rows["n_params"]))[usable]
     rank = rank.sort_values(["series", "no_aicc", "key", "rss_log", "order"])

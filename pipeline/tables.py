@@ -16,7 +16,8 @@ from pathlib import Path
 import pandas as pd
 
 #: Columns that identify things and therefore stay text, whatever they look like.
-ID_COLUMNS = ("subject", "session", "session_from", "session_to", "group", "event", "phase",
+ID_COLUMNS = ("subject", "session", "session_from", "session_to", "reference_session", "group",
+              "event", "phase",
               "model", "relation", "status", "mask", "image", "path", "stage", "reason", "labels",
               "note", "merged_into", "merged_from", "outcome", "flag", "flags", "source", "value")
 
