@@ -6,14 +6,17 @@ caller) collects results as they complete, with a bound on tasks in flight so me
 """
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import os
 import traceback
-from collections.abc import Callable, Iterable, Iterator
+from collections import deque
+from collections.abc import Callable, Generator, Iterable, Iterator
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
+from itertools import chain, islice
 from pathlib import Path
 from typing import Any
 
@@ -122,6 +125,10 @@ def _init_worker() -> None:
 
 
 Task = tuple[Callable[..., ScanResult], tuple[Any, ...]]
+Numbered = Iterator[tuple[int, Task]]
+
+CONNECT_TIMEOUT_S = 20.0   # seconds --scheduler waits for the Dask scheduler to answer
+PER_WORKER_IN_FLIGHT = 4   # default bound on pending tasks, per worker process or Dask thread
 
 
 def run_tasks(tasks: Iterable[Task], *, workers: int = 1, scheduler: str | None = None,
@@ -129,83 +136,303 @@ def run_tasks(tasks: Iterable[Task], *, workers: int = 1, scheduler: str | None 
     """Run ``(function, args)`` tasks; yield ``(index, result)`` as each completes.
 
     ``workers`` 1 runs in this process, N > 1 in a process pool (0 = all cores); ``scheduler``
-    sends the tasks to an existing Dask distributed cluster instead. At most ``in_flight`` tasks
-    (default 4 per worker) are pending at any time.
+    sends the tasks to an existing Dask distributed cluster instead. ``tasks`` is consumed lazily
+    and at most ``in_flight`` tasks (default 4 per worker) are pending at any time, so memory
+    stays flat however many scans there are. Results come in completion order; the index says
+    which task each belongs to. A task that raises gives a failed ``ScanResult`` (args must
+    start with subject, session, mask path) and the others go on. If a pool worker dies (a crash
+    in a library, the out-of-memory killer), the pool is restarted and the tasks it was running
+    are retried one at a time; only a task that kills its worker again fails.
+
+    Examples
+    --------
+    >>> def measure(subject, session, path):
+    ...     return ScanResult(subject, session, sha256=path)
+    >>> [(i, r.sha256) for i, r in run_tasks([(measure, ("a", "1", "x.nii.gz"))])]
+    [(0, 'x.nii.gz')]
     """
-    tasks = list(tasks)
+    if workers < 0:
+        raise UsageError(f"--workers must be 0 (all cores) or a positive count; got {workers}")
+    if in_flight is not None and in_flight < 1:
+        raise ValueError(f"in_flight must be at least 1; got {in_flight}")
+    numbered = enumerate(tasks)
     if scheduler:
-        yield from _run_dask(tasks, scheduler, in_flight)
-    elif workers == 1 or len(tasks) <= 1:
-        for index, (func, args) in enumerate(tasks):
-            yield index, func(*args)
-    else:
-        count = (os.cpu_count() or 1) if workers == 0 else workers
-        yield from _run_pool(tasks, count, in_flight or 4 * count)
+        yield from _run_dask(numbered, scheduler, in_flight)
+        return
+    count = _cpu_count() if workers == 0 else workers
+    if count == 1:
+        for index, task in numbered:
+            yield index, _call(task)
+        return
+    head = list(islice(numbered, count))   # never start more processes than there are tasks
+    if head:
+        yield from _run_pool(chain(head, numbered), min(count, len(head)),
+                             in_flight or PER_WORKER_IN_FLIGHT * count)
 
 
-def _run_pool(tasks: list[Task], workers: int, limit: int) -> Iterator[tuple[int, ScanResult]]:
-    import multiprocessing
+def _cpu_count() -> int:
+    """Cores this process may use (the affinity mask in containers), at least 1."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return os.cpu_count() or 1
 
-    pending = list(enumerate(tasks))[::-1]
-    context = multiprocessing.get_context("forkserver")
-    while pending:
-        with ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker) as pool:
-            running: dict[Future, int] = {}
-            try:
-                while pending or running:
-                    while pending and len(running) < limit:
-                        index, (func, args) = pending.pop()
-                        running[pool.submit(func, *args)] = index
-                    done, _ = wait(running, return_when=FIRST_COMPLETED)
-                    for future in done:
-                        index = running.pop(future)
-                        yield index, future.result()
-            except BrokenProcessPool:
-                for future, index in running.items():
-                    yield index, _crashed(tasks[index])
-                running.clear()
+
+def _call(task: Task) -> ScanResult:
+    func, args = task
+    try:
+        return func(*args)
+    except Exception as exc:  # same outcome as in a pool: one failed scan, the batch goes on
+        return _raised(task, exc)
+
+
+def _failed(task: Task, reason: str) -> ScanResult:
+    _, args = task
+    return ScanResult(args[0], args[1], error=f"{args[2]}: {reason}")
+
+
+def _raised(task: Task, exc: BaseException) -> ScanResult:
+    return _failed(task, f"task failed ({type(exc).__name__}: {exc})")
 
 
 def _crashed(task: Task) -> ScanResult:
-    _, args = task
-    return ScanResult(args[0], args[1], error=f"{args[2]}: worker process died while reading "
-                      "this scan (out of memory or a crash in a library)")
+    return _failed(task, "worker process died while measuring this scan, and again when retried "
+                   "alone (killed by the system, e.g. out of memory, or a crash in a library)")
 
 
-def _run_dask(tasks: list[Task], address: str, limit: int | None
+@dataclass(frozen=True)
+class _Sparse:
+    """A mostly-zero array as its non-zero voxels: what a worker sends back instead of the
+    crop-box component image (tens of MB as int32, a few hundred kB this way)."""
+
+    shape: tuple[int, ...]
+    dtype: str
+    order: str
+    where: np.ndarray
+    values: np.ndarray
+
+    @classmethod
+    def of(cls, array: np.ndarray) -> _Sparse:
+        order = "F" if array.flags.f_contiguous and not array.flags.c_contiguous else "C"
+        flat = array.ravel(order=order)
+        where = _nonzero(flat)
+        if flat.size < 2 ** 32:
+            where = where.astype(np.uint32)
+        return cls(array.shape, array.dtype.str, order, where, flat[where])
+
+    def array(self) -> np.ndarray:
+        flat = np.zeros(int(np.prod(self.shape)), np.dtype(self.dtype))
+        flat[self.where] = self.values
+        return flat.reshape(self.shape, order=self.order)
+
+
+def _nonzero(flat: np.ndarray, block: int = 1024) -> np.ndarray:
+    """``np.flatnonzero(flat)``, several times faster on mostly-empty images: skip the blocks
+    of ``block`` elements with nothing in them first.
+
+    >>> flat = np.zeros(5000, np.int32); flat[[3, 2100, 4999]] = 7
+    >>> _nonzero(flat).tolist()
+    [3, 2100, 4999]
+    """
+    whole = flat.size - flat.size % block
+    busy = np.flatnonzero(flat[:whole].reshape(-1, block).any(axis=1))
+    rows, cols = np.nonzero(flat[:whole].reshape(-1, block)[busy])
+    head = busy[rows] * block + cols
+    return np.concatenate([head, np.flatnonzero(flat[whole:]) + whole])
+
+
+def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
+    """Run a task in a worker and shrink its component image for the trip back."""
+    result = _call((func, args))
+    if isinstance(result, ScanResult) and isinstance(result.components, np.ndarray):
+        return dataclasses.replace(result, components=_Sparse.of(result.components))
+    return result
+
+
+def _unpacked(result: ScanResult) -> ScanResult:
+    """The task's own result again, component image restored (same values, dtype and order)."""
+    if isinstance(result, ScanResult) and isinstance(result.components, _Sparse):
+        return dataclasses.replace(result, components=result.components.array())
+    return result
+
+
+class _PoolRun:
+    """State of one process-pool run that outlives a broken pool.
+
+    Tasks in flight when a worker dies are suspects: each is retried once, alone, in a fresh
+    pool, so an innocent scan that happened to share the pool succeeds and only a scan that
+    kills its worker twice fails. Suspects run one at a time before normal work resumes.
+    """
+
+    def __init__(self, numbered: Iterable[tuple[int, Task]], limit: int) -> None:
+        self.numbered = iter(numbered)
+        self.limit = limit
+        self.tasks: dict[int, Task] = {}       # pulled and not yet answered
+        self.crashes: dict[int, int] = {}      # index -> pools it was in flight in when they broke
+        self.suspects: deque[int] = deque()    # to retry alone
+        self.unsent: deque[int] = deque()      # pulled but refused by a pool that just broke
+
+    def fill(self, pool: ProcessPoolExecutor, running: dict[Future, int]) -> bool:
+        """Submit up to the bound; False if the pool turned out to be broken."""
+        while True:
+            if self.suspects:
+                if running:
+                    return True
+                index = self.suspects.popleft()
+            elif len(running) >= self.limit:
+                return True
+            elif self.unsent:
+                index = self.unsent.popleft()
+            else:
+                item = next(self.numbered, None)
+                if item is None:
+                    return True
+                index, task = item
+                self.tasks[index] = task
+            if not _submit_to_pool(pool, running, index, self.tasks[index]):
+                (self.suspects if self.crashes.get(index) else self.unsent).appendleft(index)
+                return False
+
+    def settle(self, future: Future, index: int) -> ScanResult | None:
+        """The result of a finished future, or None if its worker died (then it is retried)."""
+        exc = future.exception()
+        if exc is None:
+            result = _unpacked(future.result())
+        elif not isinstance(exc, BrokenProcessPool):
+            result = _raised(self.tasks[index], exc)
+        else:
+            self.crashes[index] = self.crashes.get(index, 0) + 1
+            if self.crashes[index] < 2:
+                self.suspects.append(index)
+                return None
+            result = _crashed(self.tasks[index])
+        del self.tasks[index]
+        return result
+
+
+def _submit_to_pool(pool: ProcessPoolExecutor, running: dict[Future, int], index: int,
+                    task: Task) -> bool:
+    func, args = task
+    try:
+        running[pool.submit(_packed_call, func, *args)] = index
+    except BrokenProcessPool:
+        return False
+    return True
+
+
+def _run_pool(numbered: Iterable[tuple[int, Task]], workers: int, limit: int
               ) -> Iterator[tuple[int, ScanResult]]:
+    """A process pool, at most ``limit`` tasks pending; restarted if a worker dies."""
+    import multiprocessing
+
+    # Never fork: workers start clean (no copied threads or locks), arguments are pickled.
+    method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
+    context = multiprocessing.get_context(method)
+    state = _PoolRun(numbered, limit)
+    while True:
+        pool = ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker)
+        try:
+            broken = yield from _drain(pool, state)
+            if broken:
+                _kill_leftover_workers(pool)
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+        if not broken:
+            return
+
+
+def _kill_leftover_workers(pool: ProcessPoolExecutor) -> None:
+    """Kill the broken pool's workers that are still alive before shutting it down.
+
+    A worker started on demand (inside ``submit``) while another one was dying escapes the
+    standard library's clean-up of a broken pool, and ``shutdown`` then waits for it forever
+    [measured: CPython 3.11.7, forkserver, a task calling os._exit at once]. Python 3.14 has
+    ``kill_workers()``; before that the pool keeps its processes in ``_processes``.
+    """
+    for process in list((getattr(pool, "_processes", None) or {}).values()):
+        with contextlib.suppress(OSError, ValueError, AssertionError):
+            if process.is_alive():
+                process.kill()
+
+
+def _drain(pool: ProcessPoolExecutor, state: _PoolRun
+           ) -> Generator[tuple[int, ScanResult], None, bool]:
+    """Keep ``pool`` busy until the work is done (returns False) or the pool breaks (True)."""
+    running: dict[Future, int] = {}
+    while True:
+        intact = state.fill(pool, running)
+        if not running:
+            return not intact
+        done, _ = wait(running, return_when=FIRST_COMPLETED)
+        if not intact or any(isinstance(f.exception(), BrokenProcessPool) for f in done):
+            done, _ = wait(running)   # a broken pool fails every pending future promptly
+            intact = False
+        for future in done:
+            index = running.pop(future)
+            result = state.settle(future, index)
+            if result is not None:
+                yield index, result
+        if not intact:
+            return True
+
+
+def _run_dask(numbered: Numbered, address: str, limit: int | None
+              ) -> Iterator[tuple[int, ScanResult]]:
+    """Send the tasks to the Dask scheduler at ``address``, at most ``limit`` pending at a time.
+
+    Workers must see the mask paths (a shared file system) and have the same packages. A lost
+    worker is Dask's to handle (its tasks are rescheduled; a task that keeps killing workers
+    ends as ``KilledWorker``), and any task error becomes that scan's failed result.
+    """
+    client, as_completed = _connect(address)
     try:
-        from dask.distributed import Client, as_completed
-    except ImportError:
-        raise UsageError("--scheduler needs Dask: pip install 'lesion-growth[dask]'") from None
-    try:
-        client = Client(address, timeout="20s")
-    except (OSError, TimeoutError) as exc:
-        raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
-    try:
-        limit = limit or 4 * max(1, sum(client.nthreads().values()))
-        pending = list(enumerate(tasks))[::-1]
-        index_of: dict[Any, int] = {}
-        queue = as_completed()
-        while pending and len(index_of) < limit:
-            _submit(client, queue, pending, index_of)
+        limit = limit or PER_WORKER_IN_FLIGHT * max(1, sum(client.nthreads().values()))
+        queue = as_completed(loop=client.loop)
+        running: dict[Any, tuple[int, Task]] = {}
+        while len(running) < limit and _submit(client, queue, numbered, running):
+            pass
         for future in queue:
-            index = index_of.pop(future.key)
+            index, task = running.pop(future.key)
             try:
-                result = future.result()
-            except Exception as exc:  # a lost worker costs only its scan
-                result = dataclasses.replace(_crashed(tasks[index]),
-                                             error=f"{tasks[index][1][2]}: task failed on the "
-                                             f"cluster ({type(exc).__name__}: {exc})")
+                result = _unpacked(future.result())
+            except Exception as exc:  # a task error or a lost worker costs only its scan
+                result = _failed(task, _cluster_reason(exc))
+            del future
             yield index, result
-            if pending:
-                _submit(client, queue, pending, index_of)
+            _submit(client, queue, numbered, running)
     finally:
         client.close()
 
 
-def _submit(client: Any, queue: Any, pending: list, index_of: dict) -> None:
-    index, (func, args) = pending.pop()
-    future = client.submit(func, *args, pure=False)
-    index_of[future.key] = index
+def _cluster_reason(exc: Exception) -> str:
+    if type(exc).__name__ == "KilledWorker":
+        return ("worker process died each time this scan ran on the cluster (killed by the "
+                "system, e.g. out of memory, or a crash in a library; Dask gave up with "
+                "KilledWorker)")
+    return f"task failed on the cluster ({type(exc).__name__}: {exc})"
+
+
+def _connect(address: str) -> tuple[Any, Any]:
+    """A client of the scheduler at ``address`` and Dask's ``as_completed``; UsageError if not."""
+    try:
+        from dask.distributed import Client, as_completed
+    except ImportError:
+        raise UsageError("--scheduler needs Dask distributed: pip install 'lesion-growth[dask]'"
+                         ) from None
+    try:
+        client = Client(address, timeout=CONNECT_TIMEOUT_S, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise UsageError(f"cannot reach the Dask scheduler at {address!r}: {exc}") from None
+    return client, as_completed
+
+
+def _submit(client: Any, queue: Any, numbered: Numbered, running: dict) -> bool:
+    """Submit the next task, if any (``pure=False``: every scan is its own task)."""
+    item = next(numbered, None)
+    if item is None:
+        return False
+    index, (func, args) = item
+    future = client.submit(_packed_call, func, *args, pure=False)
+    running[future.key] = (index, (func, args))
     queue.add(future)
+    return True

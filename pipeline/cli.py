@@ -42,6 +42,10 @@ ForecastOpt = typer.Option(None, "--forecast-days", help="Forecast horizon after
                            "session, in days.")
 
 
+def _line(exc: Exception) -> str:
+    return " ".join(str(exc).split())
+
+
 def _guard(command):
     """Turn a PipelineError raised by a command into one line on stderr and its exit status."""
     @functools.wraps(command)
@@ -49,13 +53,13 @@ def _guard(command):
         try:
             return command(*args, **kwargs)
         except (UsageError, ConfigError) as exc:
-            print(f"error: {exc}", file=sys.stderr)
+            print(f"error: {_line(exc)}", file=sys.stderr)
             raise typer.Exit(2) from None
         except InputError as exc:
-            print(f"error: {exc}", file=sys.stderr)
+            print(f"error: {_line(exc)}", file=sys.stderr)
             raise typer.Exit(1) from None
         except PipelineError as exc:
-            print(f"error: {exc}", file=sys.stderr)
+            print(f"error: {_line(exc)}", file=sys.stderr)
             raise typer.Exit(2) from None
     return wrapper
 

@@ -92,6 +92,10 @@ def _manifest_scan(row: pd.Series, base: Path, *, source: str, date_column: str)
     problems = []
     if not scan.subject or not scan.session:
         problems.append("subject and session must not be empty")
+    for what, value in (("subject", scan.subject), ("session", scan.session)):
+        if any(c in value for c in "/\\\0") or value in (".", ".."):
+            problems.append(f"{what} {value!r} must not contain '/', '\\' or be '.'/'..' "
+                            "(it names output files)")
     if not mask:
         problems.append("mask path is empty")
     try:
@@ -145,7 +149,10 @@ def parse_when(value: str, kind: str) -> float:
     except ValueError:
         raise ValueError(f"date {text!r} is not an ISO 8601 date or datetime") from None
     if moment.tzinfo is not None:
-        moment = moment.astimezone(UTC).replace(tzinfo=None)
+        try:
+            moment = moment.astimezone(UTC).replace(tzinfo=None)
+        except OverflowError:
+            raise ValueError(f"date {text!r} is outside the calendar's range") from None
     return (moment - datetime(1, 1, 1)).total_seconds() / 86400.0
 
 

@@ -135,9 +135,22 @@ def _parse_header(head: bytes, name: str) -> nib.Nifti1Header:
         raise InputError(f"{name}: not a NIfTI file (sizeof_hdr is {size_le})", path=name)
     size = 540 if klass is nib.Nifti2Header else 348
     try:  # header only: extensions are never read (they may hold identifiers)
-        return klass.from_fileobj(io.BytesIO(head[:size]), check=True)
+        header = klass.from_fileobj(io.BytesIO(head[:size]), check=False)
+        _check_pixdim(header, name)      # before nibabel's check_fix silently repairs it
+        header.check_fix()
+        return header
+    except InputError:
+        raise
     except Exception as exc:  # nibabel raises several types for broken headers
         raise InputError(f"{name}: invalid NIfTI header ({exc})", path=name) from None
+
+
+def _check_pixdim(header: nib.Nifti1Header, name: str) -> None:
+    """NIfTI-1: pixdim[1..dim[0]] are voxel widths, positive; refuse zero, negative, NaN."""
+    ndim = min(3, max(1, int(header["dim"][0]) if 1 <= int(header["dim"][0]) <= 7 else 3))
+    sizes = np.asarray(header["pixdim"][1:ndim + 1], dtype=float)
+    if not np.all(np.isfinite(sizes)) or np.any(sizes <= 0):
+        raise InputError(f"{name}: impossible voxel sizes {tuple(sizes.tolist())}", path=name)
 
 
 def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
@@ -147,22 +160,33 @@ def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
     header = _parse_header(head, name)
     shape = _mask_shape(header, name)
     dtype = header.get_data_dtype()
+    if dtype.kind not in "iuf" or dtype.fields:
+        raise InputError(f"{name}: data type {header.get_value_label('datatype')} cannot hold "
+                         "labels; expected an integer type", path=name)
     _check_memory(shape, dtype.itemsize, name, settings)
-    affine, warnings = nifti_affine(header, name=name, settings=settings)
+    try:
+        affine, warnings = nifti_affine(header, name=name, settings=settings)
+        slope, inter = header.get_slope_inter()
+        file_affine = np.asarray(header.get_best_affine(), dtype=np.float64)
+    except (ValueError, nib.spatialimages.HeaderDataError) as exc:
+        if isinstance(exc, InputError):
+            raise
+        raise InputError(f"{name}: invalid NIfTI header ({exc})", path=name) from None
     units = int(header["xyzt_units"]) & 0x07
-    offset = int(header["vox_offset"])
+    vox = float(header["vox_offset"])
     count = int(np.prod(shape))
+    if not np.isfinite(vox) or vox < 0 or vox > len(raw) * (1032 if gz else 1):
+        raise InputError(f"{name}: impossible vox_offset {vox:g} in the header", path=name)
+    offset = int(vox)
     needed = offset + count * dtype.itemsize
     body = _decompress_into(raw, needed, name) if gz else np.frombuffer(raw, np.uint8)
     if len(body) < needed:
         raise InputError(f"{name}: file is truncated: header declares {needed} bytes, "
                          f"file holds {len(body)}", path=name)
     data = body[offset:needed].view(dtype).reshape(shape, order="F")
-    slope, inter = header.get_slope_inter()
     data = integer_labels(data, slope, inter, name=name)
     return MaskImage(data=data, affine=affine, sha256=sha, warnings=tuple(warnings),
-                     file_affine=np.asarray(header.get_best_affine(), dtype=np.float64),
-                     units_code=units)
+                     file_affine=file_affine, units_code=units)
 
 
 def _mask_shape(header: nib.Nifti1Header, name: str) -> tuple[int, int, int]:

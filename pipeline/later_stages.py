@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Config
-from pipeline.errors import UsageError
+from pipeline.errors import InputError, UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
 from pipeline.volumes import LabelledScan
@@ -37,7 +37,13 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
     parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": [], "assignment": []}
     registrations: list[dict] = []
     groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
-    for subject in sorted({s.subject for s in stage.scans}):
+    known = {s.subject for s in stage.scans}
+    if corrections is not None:
+        for index, row in corrections[~corrections.subject.isin(known)].iterrows():
+            errors.append({"subject": row.subject, "session": row.session, "path": "",
+                           "stage": "match", "reason": f"corrections.tsv line {index + 2}: "
+                           f"subject {row.subject!r} is not in the input"})
+    for subject in sorted(known):
         scans = stage.labelled(subject)
         if not scans:
             continue
@@ -46,8 +52,15 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
         try:
             transforms = _register(stage, subject, scans, config, registrations) \
                 if config.matching.register else None
-            result = matching.match_subject(scans, rows, settings=config.matching,
-                                            corrections=mine, transforms=transforms)
+            try:
+                result = matching.match_subject(scans, rows, settings=config.matching,
+                                                corrections=mine, transforms=transforms)
+            except InputError as exc:     # a bad correction: keep the automatic result
+                errors.append({"subject": subject, "session": exc.session or "", "path": "",
+                               "stage": "match", "reason": f"{exc}; corrections of this subject "
+                               "not applied"})
+                result = matching.match_subject(scans, rows, settings=config.matching,
+                                                corrections=None, transforms=transforms)
         except (ValueError, KeyError) as exc:
             errors.append({"subject": subject, "session": "", "path": "", "stage": "match",
                            "reason": f"matching failed: {exc}"})
@@ -64,6 +77,8 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
             image = matching.track_image(scan, result.assignment)
             save_label_image(track_path(out, scan.subject, scan.session), image,
                              res.file_affine, units_code=res.units_code)
+    for row in errors:
+        say(f"error: sub {row['subject']}: {row['reason']}")
     _write_stage2(out, parts)
     if config.matching.register:
         write_table(pd.DataFrame(registrations, columns=list(REGISTRATION_COLUMNS)),
@@ -143,8 +158,8 @@ def _contract_columns(name: str) -> tuple[str, ...]:
     }[name]
 
 
-def read_events(path: Path, origins: dict[str, float], known: set[str]
-                ) -> tuple[pd.DataFrame, list[dict]]:
+def read_events(path: Path, origins: dict[str, float], known: set[str],
+                lesions: set[tuple[str, int]] | None = None) -> tuple[pd.DataFrame, list[dict]]:
     """Events as days from each subject's first session; rows naming unknown subjects refused."""
     from pipeline.inputs import parse_when
 
@@ -163,6 +178,9 @@ def read_events(path: Path, origins: dict[str, float], known: set[str]
             lesion = float(row.lesion) if "lesion" in table.columns and row.lesion else np.nan
             if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):
                 raise ValueError(f"lesion {row.lesion!r} must be a positive integer")
+            if not np.isnan(lesion) and lesions is not None and \
+                    (row.subject, int(lesion)) not in lesions:
+                raise ValueError(f"subject {row.subject} has no lesion {row.lesion!r}")
         except ValueError as exc:
             errors.append({"subject": row.subject, "session": "", "path": str(path),
                            "stage": "events", "reason": f"{where}: {exc}"})

@@ -90,6 +90,13 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
         stage.results[scan.key] = result
         if not result.ok:
             stage.errors.append(error_row(scan, result.error, "volumes"))
+        elif scan.image_path is not None:
+            from pipeline.qc import image_grid_problem
+
+            problem = image_grid_problem(result.shape, result.affine, scan.image_path)
+            if problem:      # the lesions are still measured; the overlay cannot be drawn
+                stage.errors.append(error_row(scan, problem.replace(
+                    str(scan.image_path), scan.image), "image"))
         if progress:
             progress(done, len(tasks))
     stage.lesions, stage.masks = _stage1_tables(stage)

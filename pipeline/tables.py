@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
+import warnings
 from collections.abc import Iterable, Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
@@ -125,7 +126,10 @@ def read_table(path: str | os.PathLike, *,
     """
     path = Path(path)
     sep = "," if path.suffix.lower() == ".csv" else "\t"
-    raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False)
+    with warnings.catch_warnings():   # rows ending with a tab (spreadsheet exports) are fine
+        warnings.simplefilter("ignore", pd.errors.ParserWarning)
+        raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False,
+                          index_col=False)
     raw.columns = [c.strip() for c in raw.columns]
     text = set(text_columns)
     out = {}

@@ -176,7 +176,8 @@ def _read_corrections(path: Path | None) -> pd.DataFrame | None:
     return table
 
 
-def _events(path: Path | None, stage: Stage1, errors: list[dict]) -> pd.DataFrame | None:
+def _events(path: Path | None, stage: Stage1, errors: list[dict],
+            out: Path | None = None) -> pd.DataFrame | None:
     from pipeline.inputs import subject_origins
     from pipeline.later_stages import read_events
 
@@ -184,24 +185,56 @@ def _events(path: Path | None, stage: Stage1, errors: list[dict]) -> pd.DataFram
         return None
     if not Path(path).is_file():
         raise UsageError(f"{path}: events file not found")
+    lesions = None
+    if out is not None and (out / "longitudinal.tsv").exists():
+        from pipeline.tables import read_table
+
+        tracks = read_table(out / "longitudinal.tsv")
+        lesions = set(zip(tracks.subject, tracks.lesion.astype(int)))
     events, problems = read_events(Path(path), subject_origins(stage.scans),
-                                   {s.subject for s in stage.scans})
+                                   {s.subject for s in stage.scans}, lesions)
     errors.extend(problems)
     for row in problems:
         say(f"error: sub {row['subject']}: {row['reason']}")
     return events
 
 
+def _remove_stale_temporaries(out: Path) -> None:
+    """Delete temporary files of atomic writes that a killed run left (``.<stem>.<random><suffix>``,
+    see pipeline.tables.atomic_path); only called while holding OUT's lock."""
+    import re
+
+    pattern = re.compile(r"^\.[^.]+\.[a-z0-9_]{8}\.")
+    for folder in (out, out / "tracks", out / ".cache" / "volumes"):
+        if folder.is_dir():
+            for path in folder.iterdir():
+                if path.is_file() and pattern.match(path.name) and path.name != ".lock":
+                    path.unlink()
+
+
+def _check_events_file(path: Path | None) -> None:
+    """The events file exists and has its columns (UsageError otherwise), before any work."""
+    from pipeline.tables import read_table
+
+    if path is None:
+        return
+    if not Path(path).is_file():
+        raise UsageError(f"{path}: events file not found")
+    columns = set(read_table(path, text_columns=("subject", "event", "date", "day")).columns)
+    if not {"subject", "event"} <= columns or not columns & {"date", "day"}:
+        raise UsageError(f"{path}: events table needs columns subject, event and date or day")
+
+
 def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
-                  corrections: Path | None) -> tuple[list[dict], dict[str, Path | None]]:
+                  corrections: pd.DataFrame | None, corrections_path: Path | None
+                  ) -> tuple[list[dict], dict[str, Path | None]]:
     """Stages 2 and 3 and the report after stage 1; returns new error rows and files used."""
     from pipeline.later_stages import run_fitting, run_matching
 
     errors: list[dict] = []
-    table = _read_corrections(corrections)
-    errors += run_matching(stage, out, config=config, corrections=table)
-    run_fitting(out, config=config, events=_events(events, stage, errors))
-    return errors, {"events": events, "corrections": corrections}
+    errors += run_matching(stage, out, config=config, corrections=corrections)
+    run_fitting(out, config=config, events=_events(events, stage, errors, out))
+    return errors, {"events": events, "corrections": corrections_path}
 
 
 def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None = None,
@@ -209,12 +242,15 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
             scheduler: str | None = None, quiet: bool = False) -> int:
     """``lesion-growth run``: every stage, every output; provenance.json is written last."""
     started = _now()
+    table = _read_corrections(corrections)          # usage errors before any work
+    _check_events_file(events)
     with locked(out):
+        _remove_stale_temporaries(out)
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
                             progress=Progress("masks", quiet=quiet))
         _report_stage1(stage)
         errors, files = _later_stages(stage, out, config=config, events=events,
-                                      corrections=corrections)
+                                      corrections=table, corrections_path=corrections)
         write_errors(stage.errors + errors, out)
         write_dataset_description(out)
         report = _report(out, config)
