@@ -49,6 +49,18 @@ class ScanResult:
     def ok(self) -> bool:
         return not self.error
 
+    def component_image(self) -> np.ndarray:
+        """The crop-box component image, dense (whether kept dense or sparse)."""
+        if isinstance(self.components, SparseImage):
+            return self.components.array()
+        return self.components
+
+    def compact(self) -> ScanResult:
+        """The same result with its component image kept sparse (for holding many scans)."""
+        if isinstance(self.components, np.ndarray):
+            return dataclasses.replace(self, components=SparseImage.of(self.components))
+        return self
+
 
 def volumes_task(subject: str, session: str, mask_path: str, labels: tuple[int, ...] | None,
                  settings: VolumeSettings, cache_dir: str | None = None,
@@ -201,9 +213,10 @@ def _crashed(task: Task) -> ScanResult:
 
 
 @dataclass(frozen=True)
-class _Sparse:
+class SparseImage:
     """A mostly-zero array as its non-zero voxels: what a worker sends back instead of the
-    crop-box component image (tens of MB as int32, a few hundred kB this way)."""
+    crop-box component image, and how stage 1 keeps every scan's components in memory and in
+    its cache (tens of MB dense, a few hundred kB this way)."""
 
     shape: tuple[int, ...]
     dtype: str
@@ -212,7 +225,7 @@ class _Sparse:
     values: np.ndarray
 
     @classmethod
-    def of(cls, array: np.ndarray) -> _Sparse:
+    def of(cls, array: np.ndarray) -> SparseImage:
         order = "F" if array.flags.f_contiguous and not array.flags.c_contiguous else "C"
         flat = array.ravel(order=order)
         where = _nonzero(flat)
@@ -245,13 +258,13 @@ def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
     """Run a task in a worker and shrink its component image for the trip back."""
     result = _call((func, args))
     if isinstance(result, ScanResult) and isinstance(result.components, np.ndarray):
-        return dataclasses.replace(result, components=_Sparse.of(result.components))
+        return dataclasses.replace(result, components=SparseImage.of(result.components))
     return result
 
 
 def _unpacked(result: ScanResult) -> ScanResult:
     """The task's own result again, component image restored (same values, dtype and order)."""
-    if isinstance(result, ScanResult) and isinstance(result.components, _Sparse):
+    if isinstance(result, ScanResult) and isinstance(result.components, SparseImage):
         return dataclasses.replace(result, components=result.components.array())
     return result
 

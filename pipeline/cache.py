@@ -34,7 +34,13 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
     buffer = io.BytesIO()
     columns = {f"col_{name}": result.table[name].to_numpy() for name in result.table.columns}
     warnings = [w.replace(mask_path, PATH_MARK) for w in result.warnings]
-    np.savez(buffer, **columns, components=result.components, offset=np.asarray(result.offset),
+    from pipeline.batch import SparseImage
+
+    sparse = result.components if isinstance(result.components, SparseImage) else \
+        SparseImage.of(result.components)
+    np.savez(buffer, **columns, where=sparse.where, values=sparse.values,
+             image_shape=np.asarray(sparse.shape), image_dtype=np.asarray(sparse.dtype),
+             image_order=np.asarray(sparse.order), offset=np.asarray(result.offset),
              shape=np.asarray(result.shape), affine=result.affine,
              file_affine=result.file_affine, units_code=np.asarray(result.units_code),
              columns=np.asarray(list(result.table.columns)),
@@ -46,7 +52,7 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
 
 def load_result(folder: Path, key: str, subject: str, session: str, mask_path: str):
     """The cached ``ScanResult`` for ``key``, or None when there is none (or it is unreadable)."""
-    from pipeline.batch import ScanResult
+    from pipeline.batch import ScanResult, SparseImage
     from pipeline.volumes import MEASURE_COLUMNS
 
     path = folder / f"{key}.npz"
@@ -58,7 +64,10 @@ def load_result(folder: Path, key: str, subject: str, session: str, mask_path: s
             table = pd.DataFrame({n: data[f"col_{n}"] for n in names}, columns=names)
             table = table.reindex(columns=list(MEASURE_COLUMNS))
             warnings = [w.replace(PATH_MARK, mask_path) for w in json.loads(str(data["warnings"]))]
-            return ScanResult(subject, session, table=table, components=data["components"],
+            image = SparseImage(tuple(int(v) for v in data["image_shape"]),
+                                str(data["image_dtype"]), str(data["image_order"]),
+                                data["where"], data["values"])
+            return ScanResult(subject, session, table=table, components=image,
                               offset=tuple(int(v) for v in data["offset"]),
                               shape=tuple(int(v) for v in data["shape"]),
                               affine=data["affine"], file_affine=data["file_affine"],

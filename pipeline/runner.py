@@ -48,7 +48,8 @@ class Stage1:
         for scan in sorted(self.scans, key=lambda s: (s.day, s.session)):
             result = self.results.get(scan.key)
             if scan.subject == subject and not scan.error and result is not None and result.ok:
-                out.append(LabelledScan(scan.subject, scan.session, scan.day, result.components,
+                out.append(LabelledScan(scan.subject, scan.session, scan.day,
+                                        result.component_image(),
                                         result.offset, result.shape, result.affine))
         return out
 
@@ -87,7 +88,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     for done, (index, result) in enumerate(run_tasks(tasks, workers=workers,
                                                      scheduler=scheduler), start=1):
         scan = todo[index]
-        stage.results[scan.key] = result
+        stage.results[scan.key] = result.compact()    # one dense image at a time in memory
         if not result.ok:
             stage.errors.append(error_row(scan, result.error, "volumes"))
         elif scan.image_path is not None:

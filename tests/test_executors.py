@@ -209,7 +209,7 @@ def test_component_image_survives_the_trip_back(shape, density, dtype, order, se
     image = np.asarray(image, dtype=dtype, order=order)
     flat = image.ravel(order="K")
     assert np.array_equal(batch._nonzero(flat), np.flatnonzero(flat))
-    back = batch._Sparse.of(image).array()
+    back = batch.SparseImage.of(image).array()
     assert back.dtype == image.dtype and back.shape == image.shape
     assert np.array_equal(back, image)
     assert back.flags.f_contiguous == image.flags.f_contiguous
