@@ -98,6 +98,14 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
         write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
 
 
+EVENT_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "day": {"Description": "Day of the event since the subject's first session (dates are not "
+            "written)", "Units": "day"},
+    "event": {"Description": "Event as given in the events table (e.g. radiosurgery)"},
+    "lesion": {"Description": "Lesion id the event concerns; n/a = every lesion of the subject"},
+}
+
 REGISTRATION_COLUMNS = {
     "subject": {"Description": "Subject label"},
     "session": {"Description": "Session registered onto the subject's first session"},
@@ -207,6 +215,7 @@ def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> No
             write_sidecar(out / f"{name}.tsv", doc)
     if events is not None:
         write_table(events, out / "events.tsv", columns=("subject", "day", "event", "lesion"))
+        write_sidecar(out / "events.tsv", EVENT_COLUMNS)
 
 
 def load_provenance(out: Path) -> dict:

@@ -378,6 +378,7 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
         raise UsageError(f"{outcomes}: {exc}") from None
     write_table(result, out / "evaluation.tsv")
     write_table(thresholds, out / "evaluation_thresholds.tsv")
+    write_sidecar(out / "evaluation_thresholds.tsv", evaluate.THRESHOLD_COLUMNS)
     doc = getattr(evaluate, "COLUMNS", None)
     if isinstance(doc, dict):
         write_sidecar(out / "evaluation.tsv", doc)

@@ -87,3 +87,22 @@ def test_rerun_reuses_finished_scans(finished, capsys):
     err = capsys.readouterr().err
     assert code == 1 and "(0 computed, 8 reused" in err
     assert (folder / "out" / "lesions.tsv").read_bytes() == before
+
+
+def test_subjects_are_never_matched_with_each_other(tmp_path):
+    # Identity safety (common practice): two subjects with lesions at the same world positions
+    # and on the same days are followed separately; every link stays inside one subject.
+    make_cohort(tmp_path / "in")
+    manifest = (tmp_path / "in" / "manifest.tsv").read_text().splitlines()
+    twin = [line.replace("A\t", "Z\t", 1) for line in manifest[1:] if line.startswith("A\t")]
+    (tmp_path / "in" / "manifest.tsv").write_text("\n".join(manifest + twin) + "\n")
+    assert main(["run", str(tmp_path / "in" / "manifest.tsv"), "-o", str(tmp_path / "out"),
+                 "-q"]) == 1
+    longitudinal = read_table(tmp_path / "out" / "longitudinal.tsv")
+    for subject in ("A", "Z"):
+        rows = longitudinal[longitudinal.subject == subject]
+        assert sorted(set(rows.lesion)) == [1, 2] and len(rows) == 10
+    matches = read_table(tmp_path / "out" / "matches.tsv")
+    assert set(matches.subject) == {"A", "B", "Z"}
+    assert sorted(read_table(tmp_path / "out" / "lesions.tsv").query("subject == 'Z'")
+                  .session.unique()) == ["1", "2", "3", "4", "5"]
