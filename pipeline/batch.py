@@ -80,7 +80,7 @@ def volumes_task(subject: str, session: str, mask_path: str, labels: tuple[int, 
             hit = cache.load_result(Path(cache_dir), key, subject, session, mask_path)
             if hit is not None:
                 return hit
-    result = _measure_scan(subject, session, mask_path, labels, settings, raw)
+    result = _measure_scan(subject, session, mask_path, labels, settings, raw).compact()
     if cache_dir and result.ok and raw is not None:
         cache.save_result(Path(cache_dir), cache.cache_key(result.sha256, digest, labels), result,
                           mask_path)
@@ -262,13 +262,6 @@ def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
     return result
 
 
-def _unpacked(result: ScanResult) -> ScanResult:
-    """The task's own result again, component image restored (same values, dtype and order)."""
-    if isinstance(result, ScanResult) and isinstance(result.components, SparseImage):
-        return dataclasses.replace(result, components=result.components.array())
-    return result
-
-
 class _PoolRun:
     """State of one process-pool run that outlives a broken pool.
 
@@ -310,7 +303,7 @@ class _PoolRun:
         """The result of a finished future, or None if its worker died (then it is retried)."""
         exc = future.exception()
         if exc is None:
-            result = _unpacked(future.result())
+            result = future.result()   # kept sparse: the parent densifies only when needed
         elif not isinstance(exc, BrokenProcessPool):
             result = _raised(self.tasks[index], exc)
         else:
@@ -407,7 +400,7 @@ def _run_dask(numbered: Numbered, address: str, limit: int | None
         for future in queue:
             index, task = running.pop(future.key)
             try:
-                result = _unpacked(future.result())
+                result = future.result()   # kept sparse: the parent densifies only when needed
             except Exception as exc:  # a task error or a lost worker costs only its scan
                 result = _failed(task, _cluster_reason(exc))
             del future

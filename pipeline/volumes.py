@@ -172,14 +172,19 @@ def max_axial_diameter(voxels: np.ndarray, affine: np.ndarray, axis: int) -> tup
     slices, begin, sizes = np.unique(candidates[:, axis], return_index=True, return_counts=True)
     columns = np.asarray(affine, dtype=float)[:3, [p, q]]
     world = candidates[:, [p, q]] @ columns.T
-    # all slices at once: pad each slice's candidates to the largest count (NaN), compare pairs
-    padded = np.full((len(slices), int(sizes.max()), 3), np.nan)
+    world -= world.mean(axis=0)                    # centred: keeps the Gram form accurate
+    # all slices at once: pad each slice's candidates to the largest count, compare all pairs
+    # through |a - b|^2 = |a|^2 + |b|^2 - 2 a.b (one batched matrix product)
+    padded = np.zeros((len(slices), int(sizes.max()), 3))
+    valid = np.zeros(padded.shape[:2], dtype=bool)
+    rows = np.repeat(np.arange(len(slices)), sizes)
     slot = np.arange(len(candidates)) - np.repeat(begin, sizes)
-    padded[np.repeat(np.arange(len(slices)), sizes), slot] = world
-    gaps = padded[:, :, None, :] - padded[:, None, :, :]
-    squared = (gaps * gaps).sum(axis=-1)
-    best = float(np.sqrt(np.nanmax(squared))) if np.isfinite(squared).any() else 0.0
-    return best, int(len(slices))
+    padded[rows, slot] = world
+    valid[rows, slot] = True
+    norms = (padded * padded).sum(axis=-1)
+    squared = norms[:, :, None] + norms[:, None, :] - 2.0 * (padded @ padded.transpose(0, 2, 1))
+    squared[~(valid[:, :, None] & valid[:, None, :])] = 0.0
+    return float(np.sqrt(max(squared.max(), 0.0))), int(len(slices))
 
 
 def label_components(lesion: np.ndarray, *, connectivity: int = 26
