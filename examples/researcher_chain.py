@@ -31,7 +31,7 @@ days = [0.0, 45.0, 90.0, 135.0, 180.0]
 scans = [("demo01", f"{i + 1}", day, *segment(day)) for i, day in enumerate(days)]
 lesions, labelled = lesion_table(scans)
 matches, longitudinal, _ = track_lesions(lesions, labelled)
-fits, group_fits = fit_growth(longitudinal)
+fits, group_fits, _ = fit_growth(longitudinal)
 
 print(longitudinal[["lesion", "session", "day", "volume_mm3", "status"]].to_string(index=False))
 power = fits[fits.model == "power"][["lesion", "n_points", "beta", "beta_ci_low", "beta_ci_high",

@@ -18,7 +18,7 @@ Examples
 >>> matches, longitudinal, assignment = track_lesions(lesions, labelled)
 >>> longitudinal.lesion.tolist(), longitudinal.status.tolist()
 ([1, 1, 1, 1], ['present', 'present', 'present', 'present'])
->>> fits, group_fits = fit_growth(longitudinal)
+>>> fits, group_fits, unfitted = fit_growth(longitudinal)
 >>> sorted(fits.model.unique().tolist())
 ['exponential', 'gompertz', 'logistic', 'power', 'surface']
 """
@@ -87,12 +87,29 @@ def track_lesions(lesions: pd.DataFrame, scans: Iterable[LabelledScan], *,
 
 
 def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *,
-               config: Config = Config()) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """fits.tsv and group_fits.tsv rows; ``events`` has subject, day, event[, lesion]."""
+               config: Config = Config()
+               ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """fits.tsv, group_fits.tsv and unfitted.tsv rows; ``events`` has subject, day, event[,
+    lesion]. A lesion phase where no law could be fitted (fewer sessions than any law has
+    parameters) has no row in fits.tsv (contract) but one in ``unfitted`` saying why."""
     from pipeline import groupfit, growth, phases
 
     table = longitudinal if "group" in longitudinal.columns else \
         longitudinal.assign(group="")
     phased = phases.assign_phases(table, events, settings=config.fitting)
-    return (growth.fit_lesions(phased, settings=config.fitting),
-            groupfit.fit_groups(phased, settings=config.fitting))
+    fits = growth.fit_lesions(phased, settings=config.fitting)
+    none = fits["model"] == "none"
+    unfitted = fits.loc[none, [c for c in UNFITTED_COLUMNS if c in fits.columns]]
+    return (fits[~none].reset_index(drop=True),
+            groupfit.fit_groups(phased, settings=config.fitting),
+            unfitted.reset_index(drop=True))
+
+
+UNFITTED_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "lesion": {"Description": "Lesion track id"},
+    "phase": {"Description": "Phase (untreated, after-<event>, ...)"},
+    "n_points": {"Description": "Sessions usable for fitting in this phase"},
+    "group": {"Description": "Group of the subject"},
+    "note": {"Description": "Why no growth law was fitted"},
+}

@@ -39,6 +39,8 @@ class ScanResult:
     shape: tuple[int, int, int] = (0, 0, 0)
     affine: np.ndarray | None = None         # voxel -> RAS+ mm
     file_affine: np.ndarray | None = None    # as stored, in the file's units
+    forms: np.ndarray | None = None          # (2, 4, 4) sform and qform as stored
+    form_codes: tuple[int, int] = (1, 1)
     units_code: int = 2
     sha256: str = ""
     warnings: tuple[str, ...] = ()
@@ -121,6 +123,7 @@ def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int,
     return ScanResult(subject, session, table=table, components=components, offset=offset,
                       shape=tuple(int(s) for s in mask.data.shape[:3]), affine=mask.affine,
                       file_affine=mask.file_affine, units_code=mask.units_code,
+                      forms=mask.forms, form_codes=mask.form_codes,
                       sha256=mask.sha256, warnings=mask.warnings)
 
 

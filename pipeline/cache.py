@@ -43,6 +43,8 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
              image_order=np.asarray(sparse.order), offset=np.asarray(result.offset),
              shape=np.asarray(result.shape), affine=result.affine,
              file_affine=result.file_affine, units_code=np.asarray(result.units_code),
+             forms=np.full((2, 4, 4), np.nan) if result.forms is None else result.forms,
+             form_codes=np.asarray(result.form_codes),
              columns=np.asarray(list(result.table.columns)),
              warnings=np.asarray(json.dumps(warnings)),
              sha256=np.asarray(result.sha256))
@@ -71,6 +73,8 @@ def load_result(folder: Path, key: str, subject: str, session: str, mask_path: s
                               offset=tuple(int(v) for v in data["offset"]),
                               shape=tuple(int(v) for v in data["shape"]),
                               affine=data["affine"], file_affine=data["file_affine"],
+                              forms=data["forms"],
+                              form_codes=tuple(int(c) for c in data["form_codes"]),
                               units_code=int(data["units_code"]),
                               sha256=str(data["sha256"]),
                               warnings=tuple(warnings), cached=True)

@@ -85,10 +85,11 @@ def read_manifest(path: Path) -> list[Scan]:
 def _manifest_scan(row: pd.Series, base: Path, *, source: str, date_column: str) -> Scan:
     mask = row["mask"]
     image = row.get("image", "") or ""
-    scan = Scan(subject=row["subject"], session=row["session"], mask=mask,
-                mask_path=base / mask, image=image,
+    scan = Scan(subject=row["subject"], session=row["session"], mask=shown_path(mask, base),
+                mask_path=base / mask, image=shown_path(image, base),
                 image_path=(base / image) if image else None, group=row.get("group", "") or "",
-                source=source, extra={"when": row[date_column], "kind": date_column})
+                source=source, extra={"when": row[date_column], "kind": date_column,
+                                      "mask_given": mask, "image_given": image})
     problems = []
     if not scan.subject or not scan.session:
         problems.append("subject and session must not be empty")
@@ -103,6 +104,24 @@ def _manifest_scan(row: pd.Series, base: Path, *, source: str, date_column: str)
     except ValueError as exc:
         problems.append(str(exc))
     return replace(scan, error="; ".join(problems)) if problems else scan
+
+
+def shown_path(given: str, base: Path) -> str:
+    """How a manifest path appears in tables and messages: as given when relative; an absolute
+    path relative to the manifest's folder when it lies under it, else its file name only
+    (absolute paths of the machine go to provenance.json alone).
+
+    >>> shown_path("m/a.nii.gz", Path("/data")), shown_path("/data/m/a.nii.gz", Path("/data"))
+    ('m/a.nii.gz', 'm/a.nii.gz')
+    >>> shown_path("/elsewhere/a.nii.gz", Path("/data"))
+    'a.nii.gz'
+    """
+    if not given or not Path(given).is_absolute():
+        return given
+    try:
+        return Path(given).relative_to(base.absolute()).as_posix()
+    except ValueError:
+        return Path(given).name
 
 
 def parse_labels(text: str) -> tuple[int, ...] | None:
@@ -182,7 +201,7 @@ def finish_scans(scans: list[Scan]) -> list[Scan]:
     for scan, value in zip(scans, when):
         if np.isfinite(value):
             first[scan.subject] = min(first.get(scan.subject, value), value)
-    out = [replace(s, day=v - first[s.subject]) if np.isfinite(v) else s
+    out = [replace(s, day=round(v - first[s.subject], 6)) if np.isfinite(v) else s
            for s, v in zip(scans, when)]
     keys = pd.Series([s.key for s in out])
     duplicated = keys.duplicated(keep=False).to_numpy()

@@ -37,6 +37,8 @@ class MaskImage:
     warnings: tuple[str, ...] = ()
     file_affine: np.ndarray | None = None   # affine in the file's own units (for track images)
     units_code: int = 2                     # NIfTI-1 spatial unit code of the file
+    forms: np.ndarray | None = None         # (2, 4, 4) sform, qform as stored (NaN = absent)
+    form_codes: tuple[int, int] = (1, 1)    # sform_code, qform_code as stored
 
     @property
     def voxel_volume_mm3(self) -> float:
@@ -168,6 +170,7 @@ def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
         affine, warnings = nifti_affine(header, name=name, settings=settings)
         slope, inter = header.get_slope_inter()
         file_affine = np.asarray(header.get_best_affine(), dtype=np.float64)
+        forms, codes = stored_forms(header)
     except (ValueError, nib.spatialimages.HeaderDataError) as exc:
         if isinstance(exc, InputError):
             raise
@@ -186,7 +189,7 @@ def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
     data = body[offset:needed].view(dtype).reshape(shape, order="F")
     data = integer_labels(data, slope, inter, name=name)
     return MaskImage(data=data, affine=affine, sha256=sha, warnings=tuple(warnings),
-                     file_affine=file_affine, units_code=units)
+                     file_affine=file_affine, units_code=units, forms=forms, form_codes=codes)
 
 
 def _mask_shape(header: nib.Nifti1Header, name: str) -> tuple[int, int, int]:
@@ -264,7 +267,9 @@ def _affine_gap_mm(sform: np.ndarray, qform: np.ndarray, header: nib.Nifti1Heade
     shape = np.asarray([max(int(d), 1) for d in header["dim"][1:4]], dtype=float) - 1
     corners = np.array([[i, j, k, 1.0] for i in (0, shape[0]) for j in (0, shape[1])
                         for k in (0, shape[2])]).T
-    return float(np.max(np.linalg.norm((sform - qform)[:3] @ corners, axis=0)))
+    with np.errstate(invalid="ignore", over="ignore"):
+        gap = np.linalg.norm((sform - qform)[:3] @ corners, axis=0)
+    return float(np.max(gap)) if np.all(np.isfinite(gap)) else float("inf")
 
 
 def integer_labels(data: np.ndarray, slope: float | None, inter: float | None, *,
@@ -305,6 +310,18 @@ def integer_labels(data: np.ndarray, slope: float | None, inter: float | None, *
     return rounded.astype(np.int32 if fits_int32 else np.int64)
 
 
+def stored_forms(header: nib.Nifti1Header) -> tuple[np.ndarray, tuple[int, int]]:
+    """The header's sform and qform as stored (NaN where the code is 0) and their codes."""
+    forms = np.full((2, 4, 4), np.nan)
+    sform, s_code = header.get_sform(coded=True)
+    qform, q_code = header.get_qform(coded=True)
+    if sform is not None:
+        forms[0] = sform
+    if qform is not None:
+        forms[1] = qform
+    return forms, (int(s_code), int(q_code))
+
+
 def label_dtype(max_value: int) -> np.dtype:
     """Smallest integer type for a label image (never int64: other tools break on it).
 
@@ -319,7 +336,8 @@ def label_dtype(max_value: int) -> np.dtype:
 
 
 def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *,
-                     units_code: int = 2) -> None:
+                     units_code: int = 2, forms: np.ndarray | None = None,
+                     form_codes: tuple[int, int] = (1, 1)) -> None:
     """Write a label image from a fresh header: geometry only, slope 1, no text fields.
 
     ``affine`` is the voxel -> world affine in the unit named by ``units_code`` (NIfTI-1 spatial
@@ -330,8 +348,15 @@ def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *
     header = nib.Nifti1Header()
     header.set_data_dtype(dtype)
     image = nib.Nifti1Image(np.asarray(labels, dtype=dtype), affine, header=header)
-    image.set_sform(affine, code=1)
-    image.set_qform(affine, code=1)
+    if forms is None:
+        image.set_sform(affine, code=1)
+        image.set_qform(affine, code=1)
+    else:   # copy the input's sform and qform (and their codes) exactly, absent ones absent
+        sform, qform = forms
+        has_s, has_q = form_codes[0] > 0 and np.isfinite(sform).all(), \
+            form_codes[1] > 0 and np.isfinite(qform).all()
+        image.set_sform(sform if has_s else affine, code=form_codes[0] if has_s else 0)
+        image.set_qform(qform if has_q else None, code=form_codes[1] if has_q else 0)
     image.header["xyzt_units"] = units_code & 0x07
     image.header.set_slope_inter(1.0, 0.0)
     image.header["intent_code"] = 1002  # NIFTI_INTENT_LABEL (nifti1.h)

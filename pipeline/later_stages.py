@@ -76,7 +76,8 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
             res = stage.results[(scan.subject, scan.session)]
             image = matching.track_image(scan, result.assignment)
             save_label_image(track_path(out, scan.subject, scan.session), image,
-                             res.file_affine, units_code=res.units_code)
+                             res.file_affine, units_code=res.units_code, forms=res.forms,
+                             form_codes=res.form_codes)
     for row in errors:
         say(f"error: sub {row['subject']}: {row['reason']}")
     _write_stage2(out, parts)
@@ -101,7 +102,9 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
 EVENT_COLUMNS = {
     "subject": {"Description": "Subject label"},
     "day": {"Description": "Day of the event since the subject's first session (dates are not "
-            "written)", "Units": "day"},
+            "written). For phases, an event given as a date without a time counts from the end "
+            "of that day, so sessions imaged that day fall in the phase before it",
+            "Units": "day"},
     "event": {"Description": "Event as given in the events table (e.g. radiosurgery)"},
     "lesion": {"Description": "Lesion id the event concerns; n/a = every lesion of the subject"},
 }
@@ -182,7 +185,11 @@ def read_events(path: Path, origins: dict[str, float], known: set[str],
         try:
             if row.subject not in known:
                 raise ValueError(f"subject {row.subject!r} is not in the input")
-            when = parse_when(row[kind], kind) - origins.get(row.subject, 0.0)
+            when = round(parse_when(row[kind], kind) - origins.get(row.subject, 0.0), 6)
+            # a date without a time stands for the whole day: sessions imaged that day, at any
+            # time, belong to the phase before it (contract: imaging precedes treatment)
+            boundary = when + 1.0 - 1e-6 if kind == "date" and len(row[kind].strip()) == 10 \
+                else when
             lesion = float(row.lesion) if "lesion" in table.columns and row.lesion else np.nan
             if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):
                 raise ValueError(f"lesion {row.lesion!r} must be a positive integer")
@@ -193,28 +200,31 @@ def read_events(path: Path, origins: dict[str, float], known: set[str],
             errors.append({"subject": row.subject, "session": "", "path": str(path),
                            "stage": "events", "reason": f"{where}: {exc}"})
             continue
-        rows.append({"subject": row.subject, "day": when, "event": row.event, "lesion": lesion})
-    return pd.DataFrame(rows, columns=["subject", "day", "event", "lesion"]), errors
+        rows.append({"subject": row.subject, "day": boundary, "event": row.event,
+                     "lesion": lesion, "day_given": when})
+    columns = ["subject", "day", "event", "lesion", "day_given"]
+    return pd.DataFrame(rows, columns=columns), errors
 
 
 def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
     """Stage 3 on longitudinal.tsv: fits.tsv and group_fits.tsv."""
-    from pipeline import groupfit, growth, phases
+    from pipeline import groupfit, growth
+    from pipeline.api import UNFITTED_COLUMNS, fit_growth
 
-    longitudinal = read_table(out / "longitudinal.tsv")
-    if "group" not in longitudinal.columns:
-        longitudinal["group"] = ""
-    phased = phases.assign_phases(longitudinal, events, settings=config.fitting)
-    fits = growth.fit_lesions(phased, settings=config.fitting)
-    group_fits = groupfit.fit_groups(phased, settings=config.fitting)
+    fits, group_fits, unfitted = fit_growth(read_table(out / "longitudinal.tsv"), events,
+                                            config=config)
     write_table(fits, out / "fits.tsv", columns=_contract_columns("fits"))
+    write_table(unfitted, out / "unfitted.tsv", columns=tuple(unfitted.columns))
+    write_sidecar(out / "unfitted.tsv", UNFITTED_COLUMNS)
     write_table(group_fits, out / "group_fits.tsv", columns=_contract_columns("group_fits"))
     for name, module in (("fits", growth), ("group_fits", groupfit)):
         doc = getattr(module, "COLUMNS", None)
         if isinstance(doc, dict):
             write_sidecar(out / f"{name}.tsv", doc)
     if events is not None:
-        write_table(events, out / "events.tsv", columns=("subject", "day", "event", "lesion"))
+        shown = events.assign(day=events["day_given"], lesion=events["lesion"].astype("Int64"))
+        write_table(shown[["subject", "day", "event", "lesion"]], out / "events.tsv",
+                    columns=("subject", "day", "event", "lesion"))
         write_sidecar(out / "events.tsv", EVENT_COLUMNS)
 
 

@@ -229,6 +229,16 @@ class ScanCache:
         return float(low), float(max(high, low + 1e-6))
 
 
+def _mm_per_unit(img) -> float:
+    """Millimetres per spatial unit of a NIfTI image (xyzt_units; unknown is taken as mm)."""
+    from pipeline.io import UNIT_TO_MM
+
+    header = getattr(img, "header", None)
+    if header is None or "xyzt_units" not in header:
+        return 1.0
+    return UNIT_TO_MM.get(int(header["xyzt_units"]) & 0x07, 1.0)
+
+
 def _read_scan(path: Path) -> Scan | None:
     if not path.is_file():
         return None
@@ -236,7 +246,9 @@ def _read_scan(path: Path) -> Scan | None:
         img = nib.load(str(path))
         stored = np.asanyarray(img.dataobj)
         canonical = nib.as_closest_canonical(img)
-        return Scan(stored, np.asanyarray(canonical.dataobj), canonical.affine, img.affine)
+        scale = np.diag([_mm_per_unit(img)] * 3 + [1.0])     # tables are in mm; files may not be
+        return Scan(stored, np.asanyarray(canonical.dataobj), scale @ canonical.affine,
+                    scale @ img.affine)
     except _IMAGE_ERRORS:
         return None
 

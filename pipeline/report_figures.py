@@ -234,7 +234,7 @@ def axial_crop(volume: np.ndarray, affine: np.ndarray, world_mm: np.ndarray, hal
     if not 0 <= k < volume.shape[2]:
         return None
     zooms = np.sqrt((affine[:3, :2] ** 2).sum(axis=0))
-    half = [max(1, int(math.ceil(half_mm / z))) for z in zooms]
+    half = [min(512, max(1, int(math.ceil(half_mm / z)))) for z in zooms]   # bounded memory
     centre = [int(round(c)) for c in ijk[:2]]
     dtype = np.result_type(volume.dtype, np.min_scalar_type(fill))  # uint8 with fill -1: int16
     out = np.full((2 * half[0] + 1, 2 * half[1] + 1), fill, dtype=dtype)

@@ -83,8 +83,8 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
     for name in out.columns:
         if out[name].dtype == bool:
             out[name] = out[name].map({True: "true", False: "false"})
-        elif out[name].dtype == object:
-            out[name] = out[name].map(_cell)
+        elif out[name].dtype == object or pd.api.types.is_string_dtype(out[name].dtype):
+            out[name] = out[name].astype(object).map(_cell)
     with atomic_path(path) as tmp:
         out.to_csv(tmp, sep="\t", index=False, na_rep=NA, lineterminator="\n")
 

@@ -122,10 +122,11 @@ def write_provenance(out: Path, *, input: Path, kind: str, config: Config,
     if stage is not None:
         for scan in stage.scans:
             result = stage.results.get(scan.key)
-            entry = {"subject": scan.subject, "session": scan.session, "mask": scan.mask,
+            entry = {"subject": scan.subject, "session": scan.session,
+                     "mask": scan.extra.get("mask_given", scan.mask),
                      "mask_sha256": result.sha256 if result is not None and result.ok else None}
             if scan.image:
-                entry["image"] = scan.image
+                entry["image"] = scan.extra.get("image_given", scan.image)
                 entry["image_sha256"] = _maybe_sha(scan.image_path)
             inputs.append(entry)
     files = {"input": input if kind == "manifest" else None, "configuration": config_path}
@@ -258,7 +259,7 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
                          config_path=config_path, stage=stage, started=started,
                          extra_files=files)
     _final_lines(out, stage, errors, report)
-    return 1 if stage.errors or errors else 0
+    return 1 if stage.errors or errors or report is None else 0
 
 
 def _report(out: Path, config: Config) -> Path | None:
@@ -352,6 +353,8 @@ def report_only(out: Path, *, config: Config) -> int:
     if not out.is_dir():
         raise UsageError(f"{out}: output folder not found")
     path = _report(out, config)
+    if path is None:
+        return 1
     say(f"report: {path}")
     say(DISCLAIMER)
     return 0

@@ -106,3 +106,30 @@ def test_subjects_are_never_matched_with_each_other(tmp_path):
     assert set(matches.subject) == {"A", "B", "Z"}
     assert sorted(read_table(tmp_path / "out" / "lesions.tsv").query("subject == 'Z'")
                   .session.unique()) == ["1", "2", "3", "4", "5"]
+
+
+@pytest.mark.parametrize("codes", [(0, 1), (1, 0), (2, 1)])
+def test_track_image_copies_sform_and_qform_exactly(tmp_path, codes):
+    # Reference: NIfTI-1 standard (nifti1.h) sform/qform and their codes; nibabel reads both
+    # back from the written file. A sheared sform (no qform) must not gain an invented qform.
+    sform = np.array([[1.0, 0.3, 0, -10], [0, 1.0, 0, 5], [0, 0, 2.0, 3], [0, 0, 0, 1]])
+    qform = np.diag([1.0, 1.0, 2.0, 1.0])
+    data = np.zeros((12, 12, 6), np.uint8)
+    data[3:7, 3:7, 2:4] = 1
+    image = nib.Nifti1Image(data, None)
+    image.set_sform(sform if codes[0] else None, code=codes[0])
+    image.set_qform(qform if codes[1] else None, code=codes[1])
+    image.header.set_xyzt_units("mm")
+    for session in ("1", "2"):
+        nib.save(image, str(tmp_path / f"m{session}.nii.gz"))
+    (tmp_path / "m.tsv").write_text("subject\tsession\tmask\tday\nS\t1\tm1.nii.gz\t0\n"
+                                    "S\t2\tm2.nii.gz\t30\n")
+    assert main(["run", str(tmp_path / "m.tsv"), "-o", str(tmp_path / "out"), "-q"]) == 0
+    track = nib.load(str(tmp_path / "out" / "tracks" / "sub-S_ses-1_tracks.nii.gz")).header
+    source = nib.load(str(tmp_path / "m1.nii.gz")).header
+    assert (int(track["sform_code"]), int(track["qform_code"])) == codes
+    for getter in ("get_sform", "get_qform"):
+        got, want = getattr(track, getter)(coded=True), getattr(source, getter)(coded=True)
+        assert (got[0] is None) == (want[0] is None)
+        if want[0] is not None:
+            np.testing.assert_allclose(got[0], want[0], atol=1e-5)

@@ -123,3 +123,19 @@ def test_header_text_fields_never_reach_outputs(tmp_path):
             if name.endswith(".gz"):
                 raw = gzip.decompress(raw)
             assert b"Doe^Jane" not in raw and b"MRN12345" not in raw, name
+
+
+def test_absolute_manifest_paths_stay_out_of_tables(tmp_path):
+    # Issue rule: outputs never hold absolute machine paths except provenance.json (as given).
+    (tmp_path / "in").mkdir()
+    save_mask(tmp_path / "in" / "a.nii.gz", BLOB, np.eye(4))
+    (tmp_path / "in" / "m.tsv").write_text(
+        "subject\tsession\tmask\tdate\n"
+        f"S\t1\t{tmp_path / 'in' / 'a.nii.gz'}\t2020-01-01\n"
+        f"S\t2\t{tmp_path / 'in' / 'gone.nii.gz'}\t2020-02-01\n")
+    assert main(["run", str(tmp_path / "in" / "m.tsv"), "-o", str(tmp_path / "out"), "-q"]) == 1
+    for path in (tmp_path / "out").glob("*"):
+        if path.is_file() and path.name != "provenance.json":
+            assert str(tmp_path) not in path.read_text(errors="ignore"), path.name
+    assert str(tmp_path / "in" / "a.nii.gz") in (tmp_path / "out" / "provenance.json").read_text()
+    assert read_table(tmp_path / "out" / "errors.tsv").reason[0].startswith("gone.nii.gz:")
