@@ -57,8 +57,11 @@ class Stage1:
 def error_row(scan: Scan, reason: str, stage: str) -> dict:
     """An errors.tsv row; the reason names the file as given in the input, never the machine's
     resolved path."""
+    reason = as_given(reason, scan)
+    if scan.source and scan.source not in reason and (not scan.mask or scan.mask not in reason):
+        reason = f"{scan.source} ({scan.mask or 'no mask'}): {reason}"
     return {"subject": scan.subject, "session": scan.session, "path": scan.mask,
-            "stage": stage, "reason": as_given(reason, scan)}
+            "stage": stage, "reason": reason}
 
 
 def as_given(text: str, scan: Scan) -> str:
