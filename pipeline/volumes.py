@@ -399,29 +399,99 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
 
 def _measure(vox: np.ndarray, components: np.ndarray, offset: tuple[int, int, int],
              data: np.ndarray, affine: np.ndarray, voxel_mm3: float) -> list[dict]:
-    """One row of measures per component; ``vox`` are lesion voxel indices grouped by component."""
+    """One row of measures per component, computed for all components at once; ``vox`` are
+    lesion voxel indices grouped by component (1, 2, ...)."""
     if len(vox) == 0:
         return []
     local = vox - np.asarray(offset)
-    ids = components[local[:, 0], local[:, 1], local[:, 2]]
+    ids = components[local[:, 0], local[:, 1], local[:, 2]].astype(np.int64)
     values = data[vox[:, 0], vox[:, 1], vox[:, 2]]
-    starts = np.searchsorted(ids, np.arange(1, int(ids[-1]) + 2))
-    axis = axial_axis(affine)
-    rows = []
-    for c in range(1, int(ids[-1]) + 1):
-        part = vox[starts[c - 1]:starts[c]]
-        vals, counts = np.unique(values[starts[c - 1]:starts[c]], return_counts=True)
-        centre = affine[:3, :3] @ part.mean(axis=0) + affine[:3, 3]
-        diameter, slices = max_axial_diameter(part, affine, axis)
-        low, high = part.min(axis=0), part.max(axis=0)
-        rows.append({"component": c, "label": int(vals[np.argmax(counts)]),
-                     "voxels": len(part), "volume_mm3": len(part) * voxel_mm3,
-                     "centroid_x_mm": centre[0], "centroid_y_mm": centre[1],
-                     "centroid_z_mm": centre[2], "max_axial_diameter_mm": diameter,
-                     "bbox_i_min": low[0], "bbox_i_max": high[0], "bbox_j_min": low[1],
-                     "bbox_j_max": high[1], "bbox_k_min": low[2], "bbox_k_max": high[2],
-                     "axial_slices": slices})
-    return rows
+    count = int(ids[-1])
+    starts = np.searchsorted(ids, np.arange(1, count + 1))
+    sizes = np.diff(np.r_[starts, len(ids)])
+    centres = np.add.reduceat(vox.astype(np.float64), starts) / sizes[:, None]
+    centres = centres @ affine[:3, :3].T + affine[:3, 3]
+    low, high = np.minimum.reduceat(vox, starts), np.maximum.reduceat(vox, starts)
+    labels = _mode_per_group(ids, values, count)
+    diameters, slices = _axial_diameters(vox, ids, count, affine, axial_axis(affine))
+    return [{"component": c + 1, "label": int(labels[c]), "voxels": int(sizes[c]),
+             "volume_mm3": int(sizes[c]) * voxel_mm3, "centroid_x_mm": centres[c, 0],
+             "centroid_y_mm": centres[c, 1], "centroid_z_mm": centres[c, 2],
+             "max_axial_diameter_mm": float(diameters[c]), "bbox_i_min": low[c, 0],
+             "bbox_i_max": high[c, 0], "bbox_j_min": low[c, 1], "bbox_j_max": high[c, 1],
+             "bbox_k_min": low[c, 2], "bbox_k_max": high[c, 2], "axial_slices": int(slices[c])}
+            for c in range(count)]
+
+
+def _mode_per_group(ids: np.ndarray, values: np.ndarray, count: int) -> np.ndarray:
+    """Most frequent value per group id 1..count (ties: the smallest value).
+
+    >>> _mode_per_group(np.array([1, 1, 1, 2]), np.array([3, 1, 3, 7]), 2).tolist()
+    [3, 7]
+    """
+    order = np.lexsort((values, ids))
+    g, v = ids[order], values[order]
+    edge = np.flatnonzero(np.r_[True, (g[1:] != g[:-1]) | (v[1:] != v[:-1])])
+    runs = np.diff(np.r_[edge, len(g)])
+    run_group, run_value = g[edge], v[edge]
+    best = np.lexsort((run_value, -runs, run_group))       # per group: longest run first
+    first = np.flatnonzero(np.r_[True, run_group[best][1:] != run_group[best][:-1]])
+    out = np.zeros(count, dtype=values.dtype)
+    out[run_group[best][first] - 1] = run_value[best][first]
+    return out
+
+
+def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.ndarray,
+                     axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """Longest in-slice distance (mm) and number of axial slices, per component 1..count.
+
+    Same rule as :func:`max_axial_diameter` (row-end voxels are the only hull candidates), for
+    all components at once: the (component, slice) groups are compared in batches of similar
+    size through one Gram product each.
+    """
+    p, q = [a for a in range(3) if a != axis]
+    span = vox.max(axis=0).astype(np.int64) + 1
+    slice_key = ids * span[axis] + vox[:, axis]                  # (component, slice)
+    row_key = slice_key * span[p] + vox[:, p]                     # (component, slice, row)
+    order = np.argsort(row_key * span[q] + vox[:, q], kind="stable")
+    v, g, rows = vox[order], ids[order], row_key[order]
+    flag = np.zeros(len(v), dtype=bool)
+    flag[0] = flag[-1] = True
+    edge = rows[1:] != rows[:-1]
+    flag[1:] |= edge                                              # first voxel of each row
+    flag[:-1] |= edge                                             # last voxel of each row
+    pick = np.flatnonzero(flag)
+    cand, cg, ck = v[pick], g[pick], slice_key[order][pick]
+    group_start = np.flatnonzero(np.r_[True, ck[1:] != ck[:-1]])
+    group_size = np.diff(np.r_[group_start, len(cand)])
+    group_comp = cg[group_start]
+    world = cand[:, [p, q]] @ np.asarray(affine, dtype=float)[:3, [p, q]].T
+    best = np.zeros(len(group_start))
+    bucket = np.maximum(1, 2 ** np.ceil(np.log2(group_size))).astype(int)
+    for width in np.unique(bucket):
+        chosen = np.flatnonzero(bucket == width)
+        best[chosen] = _group_diameters(world, group_start[chosen], group_size[chosen], width)
+    diameters = np.zeros(count)
+    np.maximum.at(diameters, group_comp - 1, best)
+    slices = np.bincount(group_comp - 1, minlength=count)
+    return diameters, slices
+
+
+def _group_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
+                     width: int) -> np.ndarray:
+    """Largest pairwise distance within each group of points (rows starts[i]..+sizes[i])."""
+    padded = np.zeros((len(starts), width, world.shape[1]))
+    valid = np.zeros((len(starts), width), dtype=bool)
+    rows = np.repeat(np.arange(len(starts)), sizes)
+    slot = np.arange(int(sizes.sum())) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+    points = world[np.repeat(starts, sizes) + slot]
+    padded[rows, slot] = points - np.repeat(
+        np.add.reduceat(points, np.r_[0, np.cumsum(sizes)[:-1]]) / sizes[:, None], sizes, axis=0)
+    valid[rows, slot] = True
+    norms = (padded * padded).sum(axis=-1)
+    squared = norms[:, :, None] + norms[:, None, :] - 2.0 * (padded @ padded.transpose(0, 2, 1))
+    squared[~(valid[:, :, None] & valid[:, None, :])] = 0.0
+    return np.sqrt(np.maximum(squared.reshape(len(starts), -1).max(axis=1), 0.0))
 
 
 def _finish(table: pd.DataFrame, shape: tuple[int, ...], min_diameter: float,

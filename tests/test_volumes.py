@@ -276,3 +276,25 @@ def test_components_numbered_largest_first_and_border_flag():
     full[offset[0]:offset[0] + comps.shape[0], offset[1]:offset[1] + comps.shape[1],
          offset[2]:offset[2] + comps.shape[2]] = comps
     assert (full[4:7, 4:7, 4:7] == 1).all() and (full[0:2, 0:2, 0:2] == 2).all()
+
+
+def test_table_diameters_and_labels_match_per_component_brute_force():
+    # Reference: brute-force largest pairwise in-slice distance (scipy pdist) and the most
+    # frequent label (numpy unique) for every component, on an oblique grid.
+    from scipy.spatial.distance import pdist
+
+    data = random_blobs(seed=11, count=8)
+    affine = oblique_affine()
+    table, comps, offset = component_table(data, affine)
+    axis = 2
+    for row in table.itertuples():
+        local = np.argwhere(comps == row.component) + np.asarray(offset)
+        best = 0.0
+        for k in np.unique(local[:, axis]):
+            pts = local[local[:, axis] == k]
+            if len(pts) > 1:
+                best = max(best, pdist(pts @ affine[:3, :3].T).max())
+        assert row.max_axial_diameter_mm == pytest.approx(best, abs=1e-9)
+        values, counts = np.unique(data[tuple(local.T)], return_counts=True)
+        assert row.label == values[np.argmax(counts)]
+        assert row.axial_slices == len(np.unique(local[:, axis]))
