@@ -260,9 +260,7 @@ def _nonzero(flat: np.ndarray, block: int = 1024) -> np.ndarray:
 def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
     """Run a task in a worker and shrink its component image for the trip back."""
     result = _call((func, args))
-    if isinstance(result, ScanResult) and isinstance(result.components, np.ndarray):
-        return dataclasses.replace(result, components=SparseImage.of(result.components))
-    return result
+    return result.compact() if isinstance(result, ScanResult) else result
 
 
 class _PoolRun:

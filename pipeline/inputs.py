@@ -42,6 +42,14 @@ class Scan:
     def key(self) -> tuple[str, str]:
         return (self.subject, self.session)
 
+    def shown(self, text: str) -> str:
+        """``text`` with the machine's resolved mask/image paths replaced by the paths as shown
+        in tables (never an absolute path of this machine)."""
+        text = text.replace(str(self.mask_path), self.mask)
+        if self.image_path is not None and self.image:
+            text = text.replace(str(self.image_path), self.image)
+        return text
+
 
 def read_inputs(path: str | Path, *, desc: str = "lesion") -> tuple[list[Scan], str]:
     """Scans of a manifest (``.tsv``/``.csv``) or a BIDS derivatives root; returns (scans, kind)."""
@@ -197,10 +205,7 @@ def finish_scans(scans: list[Scan]) -> list[Scan]:
         except ValueError as exc:
             when.append(float("nan"))
             scans[i] = _refuse(scan, str(exc))
-    first: dict[str, float] = {}
-    for scan, value in zip(scans, when):
-        if np.isfinite(value):
-            first[scan.subject] = min(first.get(scan.subject, value), value)
+    first = subject_origins(scans)
     out = [replace(s, day=round(v - first[s.subject], 6)) if np.isfinite(v) else s
            for s, v in zip(scans, when)]
     keys = pd.Series([s.key for s in out])

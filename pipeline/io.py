@@ -92,14 +92,17 @@ def load_mask(path: str | Path, *, settings: VolumeSettings = VolumeSettings(),
     return mask
 
 
-def _decompress(raw: bytes, name: str, limit: int | None = None) -> bytes:
+def _gzip_error(exc: zlib.error, name: str) -> InputError:
+    reason = "truncated" if "incomplete" in str(exc) or "truncated" in str(exc) else "corrupt"
+    return InputError(f"{name}: gzip data is {reason} ({exc})", path=name)
+
+
+def _decompress_head(raw: bytes, name: str, size: int = 544) -> bytes:
+    """The first ``size`` decompressed bytes (the header), without decompressing the rest."""
     try:
-        if limit is None:
-            return zlib.decompress(raw, wbits=31)
-        return zlib.decompressobj(wbits=31).decompress(raw, limit)
+        return zlib.decompressobj(wbits=31).decompress(raw, size)
     except zlib.error as exc:
-        reason = "truncated" if "incomplete" in str(exc) or "truncated" in str(exc) else "corrupt"
-        raise InputError(f"{name}: gzip data is {reason} ({exc})", path=name) from None
+        raise _gzip_error(exc, name) from None
 
 
 def _decompress_into(raw: bytes, needed: int, name: str) -> np.ndarray:
@@ -118,8 +121,7 @@ def _decompress_into(raw: bytes, needed: int, name: str) -> np.ndarray:
             position += len(chunk)
             pending = stream.unconsumed_tail
     except zlib.error as exc:
-        reason = "truncated" if "incomplete" in str(exc) or "truncated" in str(exc) else "corrupt"
-        raise InputError(f"{name}: gzip data is {reason} ({exc})", path=name) from None
+        raise _gzip_error(exc, name) from None
     if position < needed and not stream.eof:
         raise InputError(f"{name}: gzip data is truncated (stream ends after {position} of "
                          f"{needed} bytes)", path=name)
@@ -158,14 +160,14 @@ def _check_pixdim(header: nib.Nifti1Header, name: str) -> None:
 def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
                       settings: VolumeSettings) -> MaskImage:
     sha = hashlib.sha256(raw).hexdigest()
-    head = _decompress(raw, name, 544) if gz else raw[:544]
+    head = _decompress_head(raw, name) if gz else raw[:544]
     header = _parse_header(head, name)
     shape = _mask_shape(header, name)
     dtype = header.get_data_dtype()
     if dtype.kind not in "iuf" or dtype.fields:
         raise InputError(f"{name}: data type {header.get_value_label('datatype')} cannot hold "
                          "labels; expected an integer type", path=name)
-    _check_memory(shape, dtype.itemsize, name, settings)
+    check_memory(shape, dtype.itemsize, name, settings)
     try:
         affine, warnings = nifti_affine(header, name=name, settings=settings)
         slope, inter = header.get_slope_inter()
@@ -207,8 +209,9 @@ def _mask_shape(header: nib.Nifti1Header, name: str) -> tuple[int, int, int]:
     return (dims[0], dims[1], dims[2])
 
 
-def _check_memory(shape: tuple[int, ...], itemsize: int, name: str,
-                  settings: VolumeSettings) -> None:
+def check_memory(shape: tuple[int, ...] | list[int], itemsize: int, name: str,
+                 settings: VolumeSettings) -> None:
+    """Refuse, before allocating, an image whose array would exceed ``max_memory_mb``."""
     needed = float(np.prod(shape, dtype=float)) * itemsize / 2**20
     if needed > settings.max_memory_mb:
         raise InputError(f"{name}: mask would need {needed:,.0f} MB in memory (limit "
@@ -237,7 +240,7 @@ def nifti_affine(header: nib.Nifti1Header, *, name: str,
                         "nibabel's default orientation")
     affine = np.asarray(header.get_best_affine(), dtype=np.float64)
     if s_code and q_code:
-        gap = _affine_gap_mm(header.get_sform(), header.get_qform(), header)
+        gap = corner_gap_mm(header.get_sform(), header.get_qform(), header["dim"][1:4])
         if gap > settings.affine_tolerance_mm:
             warnings.append(f"{name}: sform and qform disagree by {gap:.3g} mm; using the sform")
     if not np.all(np.isfinite(affine)):
@@ -262,13 +265,18 @@ def _ndim(header: nib.Nifti1Header) -> int:
     return min(3, int(header["dim"][0]))
 
 
-def _affine_gap_mm(sform: np.ndarray, qform: np.ndarray, header: nib.Nifti1Header) -> float:
-    """Largest distance (mm) between the two affines' positions of the image corners."""
-    shape = np.asarray([max(int(d), 1) for d in header["dim"][1:4]], dtype=float) - 1
-    corners = np.array([[i, j, k, 1.0] for i in (0, shape[0]) for j in (0, shape[1])
-                        for k in (0, shape[2])]).T
+def corner_gap_mm(a: np.ndarray, b: np.ndarray, shape: tuple[int, ...] | list[int]) -> float:
+    """Largest distance between where two affines put the corners of a grid of ``shape``
+    (inf when an affine is not finite).
+
+    >>> corner_gap_mm(np.eye(4), np.diag([1.0, 1.0, 2.0, 1.0]), (2, 2, 4))
+    3.0
+    """
+    last = np.asarray([max(int(d), 1) for d in shape[:3]], dtype=float) - 1
+    corners = np.array([[i, j, k, 1.0] for i in (0, last[0]) for j in (0, last[1])
+                        for k in (0, last[2])]).T
     with np.errstate(invalid="ignore", over="ignore"):
-        gap = np.linalg.norm((sform - qform)[:3] @ corners, axis=0)
+        gap = np.linalg.norm((np.asarray(a) - np.asarray(b))[:3] @ corners, axis=0)
     return float(np.max(gap)) if np.all(np.isfinite(gap)) else float("inf")
 
 
@@ -333,6 +341,24 @@ def label_dtype(max_value: int) -> np.dtype:
     if max_value <= 32767:
         return np.dtype(np.int16)
     return np.dtype(np.int32)
+
+
+def bids_name(prefix: str, value: str) -> str:
+    """``sub-01`` from ``01`` or ``sub-01``: never double a prefix.
+
+    >>> bids_name("sub", "01"), bids_name("sub", "sub-01")
+    ('sub-01', 'sub-01')
+    """
+    return value if value.startswith(f"{prefix}-") else f"{prefix}-{value}"
+
+
+def track_path(out: Path, subject: str, session: str) -> Path:
+    """``OUT/tracks/sub-<s>_ses-<t>_tracks.nii.gz``, the one naming rule of track images.
+
+    >>> track_path(Path("out"), "sub-01", "1").as_posix()
+    'out/tracks/sub-01_ses-1_tracks.nii.gz'
+    """
+    return out / "tracks" / f"{bids_name('sub', subject)}_{bids_name('ses', session)}_tracks.nii.gz"
 
 
 def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *,

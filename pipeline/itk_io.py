@@ -49,7 +49,7 @@ def load_itk_mask(path: Path, *, settings: VolumeSettings):
     """Read an NRRD or MetaImage label mask through SimpleITK, in RAS+ and (x, y, z) order."""
     import SimpleITK as sitk
 
-    from pipeline.io import MaskImage, integer_labels
+    from pipeline.io import MaskImage, check_memory, integer_labels
 
     name = str(path)
     reader = sitk.ImageFileReader()
@@ -67,11 +67,7 @@ def load_itk_mask(path: Path, *, settings: VolumeSettings):
                          f"{tuple(reader.GetSize())}); expected one 3-D mask", path=name)
     pixel_bytes = sitk.GetPixelIDValueAsString(reader.GetPixelID())
     itemsize = 8 if "64" in pixel_bytes or "double" in pixel_bytes else 4
-    needed = float(np.prod(size, dtype=float)) * itemsize / 2**20
-    if needed > settings.max_memory_mb:
-        raise InputError(f"{name}: mask would need {needed:,.0f} MB in memory (limit "
-                         f"{settings.max_memory_mb:,.0f} MB, setting volumes.max_memory_mb)",
-                         path=name)
+    check_memory(size, itemsize, name, settings)
     try:
         image = reader.Execute()
     except RuntimeError as exc:

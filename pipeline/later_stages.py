@@ -11,20 +11,8 @@ from pipeline.config import Config
 from pipeline.errors import InputError, UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
+from pipeline.io import track_path
 from pipeline.volumes import LabelledScan
-
-
-def bids_name(prefix: str, value: str) -> str:
-    """``sub-01`` from ``01`` or ``sub-01``: never double a prefix.
-
-    >>> bids_name("sub", "01"), bids_name("sub", "sub-01")
-    ('sub-01', 'sub-01')
-    """
-    return value if value.startswith(f"{prefix}-") else f"{prefix}-{value}"
-
-
-def track_path(out: Path, subject: str, session: str) -> Path:
-    return out / "tracks" / f"{bids_name('sub', subject)}_{bids_name('ses', session)}_tracks.nii.gz"
 
 
 def run_matching(stage: Stage1, out: Path, *, config: Config,
@@ -169,16 +157,24 @@ def _contract_columns(name: str) -> tuple[str, ...]:
     }[name]
 
 
+def events_table(path: Path) -> tuple[pd.DataFrame, str]:
+    """The events file as a table and its time column ('date' or 'day'); UsageError when it is
+    missing or lacks columns (checked before any work by ``run``)."""
+    if not Path(path).is_file():
+        raise UsageError(f"{path}: events file not found")
+    table = read_table(path, text_columns=("subject", "event", "date", "day", "lesion"))
+    kind = "date" if "date" in table.columns else "day" if "day" in table.columns else None
+    if kind is None or not {"subject", "event"} <= set(table.columns):
+        raise UsageError(f"{path}: events table needs columns subject, event and date or day")
+    return table, kind
+
+
 def read_events(path: Path, origins: dict[str, float], known: set[str],
                 lesions: set[tuple[str, int]] | None = None) -> tuple[pd.DataFrame, list[dict]]:
     """Events as days from each subject's first session; rows naming unknown subjects refused."""
     from pipeline.inputs import parse_when
 
-    table = read_table(path, text_columns=("subject", "event", "date", "day", "lesion"))
-    kind = "date" if "date" in table.columns else "day" if "day" in table.columns else None
-    missing = [c for c in ("subject", "event") if c not in table.columns]
-    if missing or kind is None:
-        raise UsageError(f"{path}: events table needs columns subject, event and date or day")
+    table, kind = events_table(path)
     rows, errors = [], []
     for index, row in table.iterrows():
         where = f"{path.name} row {index + 2}"

@@ -29,9 +29,8 @@ def check_scan(scan: Scan, *, settings: VolumeSettings = VolumeSettings()) -> li
 
     Messages name files as given in the input (never the machine's resolved paths).
     """
-    return [Problem(p.level, p.code, p.message.replace(str(scan.mask_path), scan.mask)
-                    .replace(str(scan.image_path), scan.image or str(scan.image_path)),
-                    p.subject, p.session, p.path) for p in _check_scan(scan, settings)]
+    return [Problem(p.level, p.code, scan.shown(p.message), p.subject, p.session, p.path)
+            for p in _check_scan(scan, settings)]
 
 
 def _check_scan(scan: Scan, settings: VolumeSettings) -> list[Problem]:
@@ -79,7 +78,7 @@ def image_grid_problem(shape: tuple[int, ...], affine: np.ndarray, image_path: P
     The affines are compared through the positions of the grid's corners, with a tolerance
     relative to the voxel size.
     """
-    from pipeline.io import NIFTI_SUFFIXES, UNIT_TO_MM, suffix_of
+    from pipeline.io import NIFTI_SUFFIXES, UNIT_TO_MM, corner_gap_mm, suffix_of
 
     if not image_path.exists():
         return f"{image_path}: image file not found"
@@ -95,9 +94,7 @@ def image_grid_problem(shape: tuple[int, ...], affine: np.ndarray, image_path: P
                 f"{tuple(shape[:3])}")
     image_affine = np.asarray(header.get_best_affine(), dtype=float)
     image_affine[:3, :] *= UNIT_TO_MM.get(int(header["xyzt_units"]) & 7, 1.0)
-    corners = np.array([[i, j, k, 1.0] for i in (0, shape[0] - 1) for j in (0, shape[1] - 1)
-                        for k in (0, shape[2] - 1)]).T
-    gap = float(np.max(np.linalg.norm((image_affine - affine)[:3] @ corners, axis=0)))
+    gap = corner_gap_mm(image_affine, affine, shape)
     voxel = float(np.min(np.sqrt((affine[:3, :3] ** 2).sum(axis=0))))
     if gap > tolerance_voxels * voxel + 1e-6:
         return f"{image_path}: image and mask grids differ by {gap:.3g} mm in position"

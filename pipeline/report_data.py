@@ -15,6 +15,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
+from pipeline.io import UNIT_TO_MM, track_path
 from pipeline.tables import read_table
 
 #: Files the report reads, with what they hold (for "missing" messages). Optional ones last.
@@ -145,20 +146,6 @@ def as_number(value: object) -> float:
     return number
 
 
-def track_path(out_dir: Path, subject: str, session: str) -> Path:
-    """``tracks/sub-<s>_ses-<t>_tracks.nii.gz`` without doubling a ``sub-``/``ses-`` prefix.
-
-    Examples
-    --------
-    >>> track_path(Path("out"), "sub-01", "1").as_posix()
-    'out/tracks/sub-01_ses-1_tracks.nii.gz'
-    """
-    sub = subject if subject.startswith("sub-") else f"sub-{subject}"
-    parts = [sub] + ([session if session.startswith("ses-") else f"ses-{session}"]
-                     if session else [])
-    return out_dir / "tracks" / ("_".join(parts) + "_tracks.nii.gz")
-
-
 @dataclass(frozen=True)
 class Scan:
     """One session's track image: as stored (for bounding boxes) and in RAS orientation."""
@@ -205,8 +192,9 @@ class ScanCache:
             return None, "no track image"
         try:
             img = nib.load(str(path))
+            mm = np.diag([_mm_per_unit(img)] * 3 + [1.0]) @ img.affine
             if img.shape[:3] != scan.stored.shape or not np.allclose(
-                    img.affine, scan.stored_affine, atol=1e-3):
+                    mm, scan.stored_affine, atol=1e-3):
                 return None, "image grid differs from the mask"
             canonical = nib.as_closest_canonical(img)
             data = np.asanyarray(canonical.dataobj, dtype=np.float32)
@@ -231,8 +219,6 @@ class ScanCache:
 
 def _mm_per_unit(img) -> float:
     """Millimetres per spatial unit of a NIfTI image (xyzt_units; unknown is taken as mm)."""
-    from pipeline.io import UNIT_TO_MM
-
     header = getattr(img, "header", None)
     if header is None or "xyzt_units" not in header:
         return 1.0

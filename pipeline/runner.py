@@ -57,15 +57,11 @@ class Stage1:
 def error_row(scan: Scan, reason: str, stage: str) -> dict:
     """An errors.tsv row; the reason names the file as given in the input, never the machine's
     resolved path."""
-    reason = as_given(reason, scan)
+    reason = scan.shown(reason)
     if scan.source and scan.source not in reason and (not scan.mask or scan.mask not in reason):
         reason = f"{scan.source} ({scan.mask or 'no mask'}): {reason}"
     return {"subject": scan.subject, "session": scan.session, "path": scan.mask,
             "stage": stage, "reason": reason}
-
-
-def as_given(text: str, scan: Scan) -> str:
-    return text.replace(str(scan.mask_path), scan.mask)
 
 
 def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: int = 1,
@@ -99,8 +95,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
 
             problem = image_grid_problem(result.shape, result.affine, scan.image_path)
             if problem:      # the lesions are still measured; the overlay cannot be drawn
-                stage.errors.append(error_row(scan, problem.replace(
-                    str(scan.image_path), scan.image), "image"))
+                stage.errors.append(error_row(scan, problem, "image"))
         if progress:
             progress(done, len(tasks))
     stage.lesions, stage.masks = _stage1_tables(stage)

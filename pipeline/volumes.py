@@ -91,26 +91,6 @@ def structure(connectivity: int) -> np.ndarray:
     return ndimage.generate_binary_structure(3, rank)
 
 
-def bounding_box(mask: np.ndarray) -> tuple[slice, slice, slice] | None:
-    """Smallest box holding every True voxel, or None for an empty mask.
-
-    The first axis is found from one contiguous pass (for a C-ordered array), the other two
-    only within that slab, so a mostly empty mask costs little more than one read.
-
-    >>> m = np.zeros((4, 5, 6), bool); m[1, 2:4, 5] = True
-    >>> bounding_box(m)
-    (slice(1, 2, None), slice(2, 4, None), slice(5, 6, None))
-    """
-    first = np.flatnonzero(mask.reshape(mask.shape[0], -1).any(axis=1))
-    if first.size == 0:
-        return None
-    slab = mask[first[0]:first[-1] + 1]
-    second = np.flatnonzero(slab.any(axis=(0, 2)))
-    third = np.flatnonzero(slab[:, second[0]:second[-1] + 1].any(axis=(0, 1)))
-    return (slice(int(first[0]), int(first[-1]) + 1), slice(int(second[0]), int(second[-1]) + 1),
-            slice(int(third[0]), int(third[-1]) + 1))
-
-
 def axial_axis(affine: np.ndarray) -> int:
     """Voxel axis whose direction is closest to the world superior-inferior (z) axis.
 
@@ -124,83 +104,16 @@ def axial_axis(affine: np.ndarray) -> int:
     return int(np.argmax(cosine))
 
 
-def max_in_plane_distance(points_ij: np.ndarray, columns: np.ndarray) -> float:
-    """Largest world distance between voxel centres of one slice.
-
-    ``points_ij`` are the (n, 2) in-slice voxel indices, ``columns`` the (3, 2) affine columns of
-    those two axes (mm per voxel step). An affine map keeps convex hulls, so only hull vertices
-    found in index space need comparing.
-
-    Examples
-    --------
-    >>> pts = np.array([[0, 0], [3, 0], [0, 4], [1, 1]])
-    >>> max_in_plane_distance(pts, np.eye(3)[:, :2])
-    5.0
-    """
-    from scipy.spatial import ConvexHull, QhullError
-    from scipy.spatial.distance import pdist
-
-    pts = np.unique(np.asarray(points_ij, dtype=float), axis=0)
-    if len(pts) < 2:
-        return 0.0
-    if len(pts) > 16:
-        try:
-            pts = pts[ConvexHull(pts).vertices]
-        except QhullError:  # collinear voxels: the ends of the line are extreme in i or j
-            ends = [pts[np.argmin(pts[:, 0])], pts[np.argmax(pts[:, 0])],
-                    pts[np.argmin(pts[:, 1])], pts[np.argmax(pts[:, 1])]]
-            pts = np.array(ends)
-    world = pts @ np.asarray(columns, dtype=float).T
-    return float(pdist(world).max())
-
-
 def max_axial_diameter(voxels: np.ndarray, affine: np.ndarray, axis: int) -> tuple[float, int]:
-    """Longest in-slice distance (mm) over the axial slices, and the number of slices spanned.
+    """Longest in-slice distance (mm) over the axial slices, and the number of slices spanned,
+    for one lesion's (n, 3) voxel indices; ``axis`` is the axial voxel axis.
 
-    ``voxels`` are (n, 3) voxel indices of one lesion; ``axis`` the axial voxel axis. Only the
-    first and last voxel of each row of a slice can be convex-hull vertices, so those are the
-    candidates compared (an affine map keeps hulls).
+    >>> max_axial_diameter(np.array([[0, 0, 0], [3, 4, 0], [9, 9, 1]]), np.eye(4), 2)
+    (5.0, 2)
     """
-    p, q = [a for a in range(3) if a != axis]
-    order = np.lexsort((voxels[:, q], voxels[:, p], voxels[:, axis]))
-    vox = voxels[order]
-    row_key = vox[:, [axis, p]]
-    change = np.any(row_key[1:] != row_key[:-1], axis=1)
-    starts = np.flatnonzero(np.r_[True, change])
-    ends = np.r_[starts[1:], len(vox)] - 1
-    candidates = vox[np.unique(np.r_[starts, ends])]
-    slices, begin, sizes = np.unique(candidates[:, axis], return_index=True, return_counts=True)
-    columns = np.asarray(affine, dtype=float)[:3, [p, q]]
-    world = candidates[:, [p, q]] @ columns.T
-    world -= world.mean(axis=0)                    # centred: keeps the Gram form accurate
-    # all slices at once: pad each slice's candidates to the largest count, compare all pairs
-    # through |a - b|^2 = |a|^2 + |b|^2 - 2 a.b (one batched matrix product)
-    padded = np.zeros((len(slices), int(sizes.max()), 3))
-    valid = np.zeros(padded.shape[:2], dtype=bool)
-    rows = np.repeat(np.arange(len(slices)), sizes)
-    slot = np.arange(len(candidates)) - np.repeat(begin, sizes)
-    padded[rows, slot] = world
-    valid[rows, slot] = True
-    norms = (padded * padded).sum(axis=-1)
-    squared = norms[:, :, None] + norms[:, None, :] - 2.0 * (padded @ padded.transpose(0, 2, 1))
-    squared[~(valid[:, :, None] & valid[:, None, :])] = 0.0
-    return float(np.sqrt(max(squared.max(), 0.0))), int(len(slices))
-
-
-def label_components(lesion: np.ndarray, *, connectivity: int = 26
-                     ) -> tuple[np.ndarray, tuple[int, int, int]]:
-    """Connected components of a boolean mask, cropped to the lesion bounding box.
-
-    Components are numbered 1..n by decreasing voxel count, ties by their first voxel in
-    (i, j, k) order, so the numbering does not depend on the labelling library.
-
-    Returns
-    -------
-    components : int32 ndarray over the crop box (shape (0, 0, 0) for an empty mask)
-    offset : voxel index of the crop box's first voxel
-    """
-    components, offset, _ = _label(lesion, None, connectivity, "mask")
-    return components, offset
+    ids = np.ones(len(voxels), dtype=np.int64)
+    diameters, slices = _axial_diameters(np.asarray(voxels), ids, 1, affine, axis)
+    return float(diameters[0]), int(slices[0])
 
 
 def _connected(crop: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
@@ -294,8 +207,7 @@ def _label_parts(lesion: np.ndarray, connectivity: int) -> tuple[np.ndarray, np.
     return np.concatenate(coords), np.concatenate(ids)
 
 
-def _occupied_parts(volume: np.ndarray, *, min_gap: int = 1, depth: int = 0
-                    ) -> list[tuple[slice, slice, slice]]:
+def _occupied_parts(volume: np.ndarray, *, depth: int = 0) -> list[tuple[slice, slice, slice]]:
     """Tight boxes covering the non-zero voxels, split at empty planes along any axis.
 
     >>> v = np.zeros((9, 4, 4), np.uint8); v[1, 1, 1] = v[7, 2, 2] = 1
@@ -369,7 +281,8 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
         world centroid, ``max_axial_diameter_mm``, ``equivalent_diameter_mm`` (sphere of equal
         volume), voxel bounding box, ``axial_slices``, ``touches_border``, ``measurable``.
     components, offset
-        The component image over the lesion bounding box (see :func:`label_components`).
+        The component image over the lesion bounding box (0 background, c = component c)
+        and the voxel index of the box's first voxel.
 
     Notes
     -----

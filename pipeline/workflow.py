@@ -15,6 +15,7 @@ import pandas as pd
 from pipeline import DISCLAIMER, __version__
 from pipeline.config import Config
 from pipeline.errors import UsageError
+from pipeline.later_stages import events_table
 from pipeline.runner import Stage1, read_errors, run_volumes, say, write_errors, write_json
 
 
@@ -184,8 +185,6 @@ def _events(path: Path | None, stage: Stage1, errors: list[dict],
 
     if path is None:
         return None
-    if not Path(path).is_file():
-        raise UsageError(f"{path}: events file not found")
     lesions = None
     if out is not None and (out / "longitudinal.tsv").exists():
         from pipeline.tables import read_table
@@ -213,19 +212,6 @@ def _remove_stale_temporaries(out: Path) -> None:
                     path.unlink()
 
 
-def _check_events_file(path: Path | None) -> None:
-    """The events file exists and has its columns (UsageError otherwise), before any work."""
-    from pipeline.tables import read_table
-
-    if path is None:
-        return
-    if not Path(path).is_file():
-        raise UsageError(f"{path}: events file not found")
-    columns = set(read_table(path, text_columns=("subject", "event", "date", "day")).columns)
-    if not {"subject", "event"} <= columns or not columns & {"date", "day"}:
-        raise UsageError(f"{path}: events table needs columns subject, event and date or day")
-
-
 def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
                   corrections: pd.DataFrame | None, corrections_path: Path | None
                   ) -> tuple[list[dict], dict[str, Path | None]]:
@@ -244,7 +230,8 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
     """``lesion-growth run``: every stage, every output; provenance.json is written last."""
     started = _now()
     table = _read_corrections(corrections)          # usage errors before any work
-    _check_events_file(events)
+    if events is not None:
+        events_table(events)                          # usage errors before any work
     with locked(out):
         _remove_stale_temporaries(out)
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
