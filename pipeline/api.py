@@ -30,6 +30,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Config
+from pipeline.sidecars import UNFITTED_COLUMNS
 from pipeline.volumes import LabelledScan, component_table, scan_table
 
 ScanInput = tuple[str, str, float, np.ndarray, np.ndarray]
@@ -105,11 +106,3 @@ def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *
             unfitted.reset_index(drop=True))
 
 
-UNFITTED_COLUMNS = {
-    "subject": {"Description": "Subject label"},
-    "lesion": {"Description": "Lesion track id"},
-    "phase": {"Description": "Phase (untreated, after-<event>, ...)"},
-    "n_points": {"Description": "Sessions usable for fitting in this phase"},
-    "group": {"Description": "Group of the subject"},
-    "note": {"Description": "Why no growth law was fitted"},
-}

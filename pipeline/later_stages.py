@@ -12,6 +12,7 @@ from pipeline.errors import InputError, UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
 from pipeline.io import track_path
+from pipeline.sidecars import EVENT_COLUMNS, REGISTRATION_COLUMNS
 from pipeline.volumes import LabelledScan
 
 
@@ -87,27 +88,7 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
         write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
 
 
-EVENT_COLUMNS = {
-    "subject": {"Description": "Subject label"},
-    "day": {"Description": "Day of the event since the subject's first session (dates are not "
-            "written). For phases, an event given as a date without a time counts from the end "
-            "of that day, so sessions imaged that day fall in the phase before it",
-            "Units": "day"},
-    "event": {"Description": "Event as given in the events table (e.g. radiosurgery)"},
-    "lesion": {"Description": "Lesion id the event concerns; n/a = every lesion of the subject"},
-}
 
-REGISTRATION_COLUMNS = {
-    "subject": {"Description": "Subject label"},
-    "session": {"Description": "Session registered onto the subject's first session"},
-    "reference_session": {"Description": "The subject's first session (fixed image)"},
-    "quality": {"Description": "Pearson correlation of the reference image with the registered "
-                "image over the reference foreground (1 = identical up to scale)", "Units": "1"},
-    "quality_before": {"Description": "The same correlation without registration", "Units": "1"},
-    "metric_value": {"Description": "Final Mattes mutual information (lower is better)"},
-    "matrix_ras": {"Description": "4x4 world -> world (RAS+ mm) matrix, 16 numbers row by row, "
-                   "mapping this session's coordinates into the reference session's"},
-}
 
 
 def _register(stage: Stage1, subject: str, scans: list[LabelledScan], config: Config,
@@ -205,7 +186,8 @@ def read_events(path: Path, origins: dict[str, float], known: set[str],
 def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
     """Stage 3 on longitudinal.tsv: fits.tsv and group_fits.tsv."""
     from pipeline import groupfit, growth
-    from pipeline.api import UNFITTED_COLUMNS, fit_growth
+    from pipeline.api import fit_growth
+    from pipeline.sidecars import UNFITTED_COLUMNS
 
     fits, group_fits, unfitted = fit_growth(read_table(out / "longitudinal.tsv"), events,
                                             config=config)

@@ -1,4 +1,5 @@
-"""BIDS JSON data dictionaries for the stage-1 tables (one entry per column, with units)."""
+"""BIDS JSON data dictionaries of the tables written by the workflow itself (one entry per
+column, with units); each stage module keeps the dictionary of its own table."""
 from __future__ import annotations
 
 _ID = {
@@ -57,4 +58,35 @@ ERROR_SIDECAR = {
               "Levels": {"input": "input table row", "volumes": "reading or measuring the mask",
                          "match": "matching", "fit": "fitting"}},
     "reason": {"Description": "One-line reason a person can act on"},
+}
+
+EVENT_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "day": {"Description": "Day of the event since the subject's first session (dates are not "
+            "written). For phases, an event given as a date without a time counts from the end "
+            "of that day, so sessions imaged that day fall in the phase before it",
+            "Units": "day"},
+    "event": {"Description": "Event as given in the events table (e.g. radiosurgery)"},
+    "lesion": {"Description": "Lesion id the event concerns; n/a = every lesion of the subject"},
+}
+
+REGISTRATION_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "session": {"Description": "Session registered onto the subject's first session"},
+    "reference_session": {"Description": "The subject's first session (fixed image)"},
+    "quality": {"Description": "Pearson correlation of the reference image with the registered "
+                "image over the reference foreground (1 = identical up to scale)", "Units": "1"},
+    "quality_before": {"Description": "The same correlation without registration", "Units": "1"},
+    "metric_value": {"Description": "Final Mattes mutual information (lower is better)"},
+    "matrix_ras": {"Description": "4x4 world -> world (RAS+ mm) matrix, 16 numbers row by row, "
+                   "mapping this session's coordinates into the reference session's"},
+}
+
+UNFITTED_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "lesion": {"Description": "Lesion track id"},
+    "phase": {"Description": "Phase (untreated, after-<event>, ...)"},
+    "n_points": {"Description": "Sessions usable for fitting in this phase"},
+    "group": {"Description": "Group of the subject"},
+    "note": {"Description": "Why no growth law was fitted"},
 }
