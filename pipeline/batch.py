@@ -25,6 +25,7 @@ import pandas as pd
 
 from pipeline.errors import InputError, UsageError
 from pipeline.settings import VolumeSettings
+from pipeline.volumes import nonzero_flat
 
 
 @dataclass(frozen=True, eq=False)
@@ -102,11 +103,11 @@ def _read(path: str) -> bytes | None:
 def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int, ...] | None,
                   settings: VolumeSettings, raw: bytes | None) -> ScanResult:
     from pipeline.io import load_mask
-    from pipeline.volumes import component_table
+    from pipeline.volumes import measure_components
 
     try:
         mask = load_mask(mask_path, settings=settings, raw=raw)
-        table, components, offset = component_table(
+        table, found = measure_components(
             mask.data, mask.affine, labels=labels, connectivity=settings.connectivity,
             min_volume_mm3=settings.min_volume_mm3,
             measurable_min_diameter_mm=settings.measurable_min_diameter_mm,
@@ -120,6 +121,8 @@ def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int,
         return ScanResult(subject, session, error=f"{mask_path}: internal error "
                           f"{type(exc).__name__}: {exc} (at {os.path.basename(where.filename)}:"
                           f"{where.lineno})")
+    offset, shape, where, ids = found.flat()
+    components = SparseImage(shape, ids.dtype.str, found.order, _small_index(where, shape), ids)
     return ScanResult(subject, session, table=table, components=components, offset=offset,
                       shape=tuple(int(s) for s in mask.data.shape[:3]), affine=mask.affine,
                       file_affine=mask.file_affine, units_code=mask.units_code,
@@ -231,10 +234,9 @@ class SparseImage:
     def of(cls, array: np.ndarray) -> SparseImage:
         order = "F" if array.flags.f_contiguous and not array.flags.c_contiguous else "C"
         flat = array.ravel(order=order)
-        where = _nonzero(flat)
-        if flat.size < 2 ** 32:
-            where = where.astype(np.uint32)
-        return cls(array.shape, array.dtype.str, order, where, flat[where])
+        where = nonzero_flat(flat)
+        return cls(array.shape, array.dtype.str, order, _small_index(where, array.shape),
+                   flat[where])
 
     def array(self) -> np.ndarray:
         flat = np.zeros(int(np.prod(self.shape)), np.dtype(self.dtype))
@@ -242,19 +244,9 @@ class SparseImage:
         return flat.reshape(self.shape, order=self.order)
 
 
-def _nonzero(flat: np.ndarray, block: int = 1024) -> np.ndarray:
-    """``np.flatnonzero(flat)``, several times faster on mostly-empty images: skip the blocks
-    of ``block`` elements with nothing in them first.
-
-    >>> flat = np.zeros(5000, np.int32); flat[[3, 2100, 4999]] = 7
-    >>> _nonzero(flat).tolist()
-    [3, 2100, 4999]
-    """
-    whole = flat.size - flat.size % block
-    busy = np.flatnonzero(flat[:whole].reshape(-1, block).any(axis=1))
-    rows, cols = np.nonzero(flat[:whole].reshape(-1, block)[busy])
-    head = busy[rows] * block + cols
-    return np.concatenate([head, np.flatnonzero(flat[whole:]) + whole])
+def _small_index(where: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    """Flat indices as uint32 when the image is small enough (half the bytes to hold or send)."""
+    return where.astype(np.uint32) if int(np.prod(shape)) < 2 ** 32 else where
 
 
 def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:

@@ -70,12 +70,7 @@ def select_labels(data: np.ndarray, labels: tuple[int, ...] | None, *, name: str
         return data != 0
     selected = np.isin(data, np.asarray(labels, dtype=data.dtype))
     if not selected.any() and data.any():
-        present = np.unique(data[data != 0])
-        shown = present[:10].tolist()
-        from pipeline.errors import InputError
-
-        raise InputError(f"{name}: label values {tuple(labels)} asked for, but the mask holds "
-                         f"only {shown}", path=name)
+        raise _absent_labels(np.asarray(data).ravel(), labels, name)
     return selected
 
 
@@ -141,123 +136,201 @@ def _connected(crop: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
     return ndimage.label(crop != 0, structure=structure(connectivity), output=np.int32)
 
 
-def _single_value(crop: np.ndarray) -> bool:
-    """Whether an unsigned crop holds only 0 and 1 (then it can be labelled as it is, without a
-    boolean copy); one pass, no temporary array."""
-    return crop.dtype.kind in "ub" and int(crop.max(initial=0)) <= 1
+@dataclass(frozen=True, eq=False)
+class LesionVoxels:
+    """The lesion voxels of one mask with their component numbers: what stage 1 measures, kept
+    sparse (a mask is mostly background).
 
-
-def _label(data: np.ndarray, labels: tuple[int, ...] | None, connectivity: int, name: str
-           ) -> tuple[np.ndarray, tuple[int, int, int], np.ndarray]:
-    """Components (crop box), offset, and the lesion voxels' indices (n, 3) sorted by component.
-
-    Works on the C-ordered view of a Fortran-ordered array (how nibabel lays out NIfTI data),
-    on the box of non-zero voxels, split further at empty planes (no component can cross an
-    empty plane), so only the occupied parts are copied and labelled. Components are numbered
-    largest first, ties by first voxel in raster order; indices are returned in the caller's
-    axis order.
+    ``voxels`` are (n, 3) indices in the caller's axis order, listed in the raster order of the
+    mask's memory layout (Fortran order when ``fortran``, else C order), so their flat indices in
+    any box of that layout ascend. ``ids`` numbers the components 1..``count``, largest first,
+    ties by first voxel in that raster order; ``values`` are the mask values at the voxels.
+    ``frame`` (offset, shape) fixes the box when components were dropped (it stays the box of
+    every lesion voxel found).
     """
-    flip = data.flags.f_contiguous and not data.flags.c_contiguous
-    work = data.T if flip else data
-    box = (slice(0, work.shape[0]), slice(0, work.shape[1]), slice(0, work.shape[2]))
-    binary = labels is None and _single_value(work)
-    lesion = work if binary else select_labels(work, labels, name=name)
-    coords, ids = _label_parts(lesion, connectivity)
-    if len(ids) == 0:
-        return np.zeros((0, 0, 0), dtype=np.uint8), (0, 0, 0), np.zeros((0, 3), dtype=np.int64)
-    linear = np.ravel_multi_index(coords.T, lesion.shape)
-    by_id = np.lexsort((linear, ids))
-    ids, coords, linear = ids[by_id], coords[by_id], linear[by_id]
-    starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]])
-    sizes = np.diff(np.r_[starts, len(ids)])
-    order = np.lexsort((linear[starts], -sizes))    # largest first, then earliest voxel
-    count = len(starts)
-    rank = np.empty(count, dtype=np.int64)
-    rank[order] = np.arange(1, count + 1)
-    new = np.repeat(rank, sizes)
-    regroup = np.argsort(new, kind="stable")
-    new, coords = new[regroup], coords[regroup]
-    low, high = coords.min(axis=0), coords.max(axis=0)
-    from pipeline.io import label_dtype
 
-    components = np.zeros(tuple(high - low + 1), dtype=label_dtype(count))
-    components[tuple((coords - low).T)] = new
-    offset = tuple(int(sl.start + lo) for sl, lo in zip(box, low))
-    voxels = coords + np.asarray([sl.start for sl in box])
-    if flip:
-        return components.T, offset[::-1], voxels[:, ::-1]
-    return components, offset, voxels
+    voxels: np.ndarray
+    values: np.ndarray
+    ids: np.ndarray
+    count: int
+    fortran: bool
+    frame: tuple[tuple[int, int, int], tuple[int, int, int]] | None = None
+
+    @property
+    def order(self) -> str:
+        return "F" if self.fortran else "C"
+
+    def box(self) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
+        """Offset and shape of the bounding box of the lesion voxels ((0, 0, 0) twice if none).
+
+        >>> lv = lesion_voxels(np.pad(np.ones((2, 1, 1), np.uint8), 2), 26)
+        >>> lv.box()
+        ((2, 2, 2), (2, 1, 1))
+        """
+        if self.frame is not None:
+            return self.frame
+        if len(self.ids) == 0:
+            return (0, 0, 0), (0, 0, 0)
+        low, high = self.voxels.min(axis=0), self.voxels.max(axis=0)
+        return tuple(int(v) for v in low), tuple(int(v) for v in high - low + 1)
+
+    def flat(self) -> tuple[tuple[int, int, int], tuple[int, int, int], np.ndarray, np.ndarray]:
+        """Offset, shape, ascending flat indices (in ``order``) and component numbers (the
+        smallest integer type that holds them) of the component image over the box."""
+        from pipeline.io import label_dtype
+
+        offset, shape = self.box()
+        if len(self.ids) == 0:
+            return offset, shape, np.zeros(0, np.int64), np.zeros(0, label_dtype(self.count))
+        local = self.voxels - np.asarray(offset)
+        where = np.ravel_multi_index(tuple(local.T), shape, order=self.order)
+        return offset, shape, where, self.ids.astype(label_dtype(self.count))
+
+    def image(self) -> tuple[np.ndarray, tuple[int, int, int]]:
+        """The component image over the box (in the mask's memory order) and its offset."""
+        offset, shape, where, ids = self.flat()
+        image = np.zeros(shape, dtype=ids.dtype, order=self.order)
+        image.reshape(-1, order=self.order)[where] = ids
+        return image, offset
+
+    def keep(self, kept: np.ndarray) -> LesionVoxels:
+        """Only the components numbered in ``kept`` (ascending), renumbered 1..len(kept)."""
+        mapping = np.zeros(self.count + 1, dtype=np.int64)
+        mapping[kept] = np.arange(1, len(kept) + 1)
+        new = mapping[self.ids]
+        stay = new > 0
+        return LesionVoxels(self.voxels[stay], self.values[stay], new[stay], len(kept),
+                            self.fortran, self.box())
 
 
-def _label_parts(lesion: np.ndarray, connectivity: int) -> tuple[np.ndarray, np.ndarray]:
-    """Lesion voxel indices (raster order within each part) and a component id per voxel,
-    labelling each occupied part of ``lesion`` separately."""
-    coords, ids, total = [], [], 0
-    for part in _occupied_parts(lesion):
-        piece = np.ascontiguousarray(lesion[part])
-        if not piece.flags.writeable:                 # cc3d refuses read-only buffers
-            piece = piece.copy()
-        raw, count = _connected(piece, connectivity)
-        local = _nonzero_voxels(raw)
-        ids.append(raw[local[:, 0], local[:, 1], local[:, 2]].astype(np.int64) + total)
-        coords.append(local + np.asarray([sl.start for sl in part]))
+def nonzero_flat(flat: np.ndarray) -> np.ndarray:
+    """``np.flatnonzero(flat)`` for a 1-D array, several times faster on mostly-empty images: a
+    vectorised test of 8-byte words marks the 64-byte blocks that hold anything, and only those
+    blocks are searched.
+
+    >>> flat = np.zeros(5000, np.int16); flat[[3, 2100, 4999]] = 7
+    >>> nonzero_flat(flat).tolist()
+    [3, 2100, 4999]
+    >>> nonzero_flat(np.array([0.0, -0.0, 2.0])).tolist()
+    [2]
+    """
+    flat = np.ascontiguousarray(flat)
+    itemsize = flat.dtype.itemsize
+    if 64 % itemsize or flat.dtype.kind not in "biuf":
+        return np.flatnonzero(flat)
+    per_block = 64 // itemsize
+    whole = flat.size - flat.size % per_block
+    blocks = flat[:whole].reshape(-1, per_block)
+    words = (blocks.view(np.uint8).reshape(-1, 64).view(np.uint64) != 0)  # (blocks, 8) bool
+    busy = np.flatnonzero(words.view(np.uint64))                          # 8 bools = 1 word
+    rows, cols = np.nonzero(blocks[busy])
+    return np.concatenate([busy[rows] * per_block + cols, np.flatnonzero(flat[whole:]) + whole])
+
+
+def lesion_voxels(data: np.ndarray, connectivity: int, labels: tuple[int, ...] | None = None,
+                  name: str = "mask") -> LesionVoxels:
+    """Find the lesion voxels of a label mask and number its connected components.
+
+    The lesion voxels are found from the array's memory in one fast pass (no boolean copy of the
+    volume); the set is split at empty planes (no component can cross one) and each part is
+    labelled in a box of its own, so the cost follows the lesions, not the image size.
+    Components are numbered largest first, ties by first voxel in raster order.
+    """
+    fortran = data.flags.f_contiguous and not data.flags.c_contiguous
+    work = data.T if fortran else data
+    where = nonzero_flat(work.reshape(-1))
+    values = work.reshape(-1)[where]
+    if labels is not None:
+        chosen = np.isin(values, np.asarray(labels, dtype=data.dtype))
+        if not chosen.any() and len(values):
+            raise _absent_labels(values, labels, name)
+        where, values = where[chosen], values[chosen]
+    coords = np.column_stack(np.unravel_index(where, work.shape)).astype(np.int64, copy=False)
+    raw, count = _number_parts(coords, connectivity)
+    ids = _largest_first(raw, count)
+    voxels = coords[:, ::-1] if fortran else coords
+    return LesionVoxels(np.ascontiguousarray(voxels), values, ids, count, fortran)
+
+
+def _absent_labels(values: np.ndarray, labels: tuple[int, ...], name: str) -> Exception:
+    from pipeline.errors import InputError
+
+    shown = np.unique(values[values != 0])[:10].tolist()
+    return InputError(f"{name}: label values {tuple(labels)} asked for, but the mask holds "
+                      f"only {shown}", path=name)
+
+
+#: A part of the lesion voxels is labelled as it is (not split further) when its box holds at
+#: most this many voxels, or at most this many per lesion voxel.
+SMALL_BOX_VOXELS = 1 << 16
+DENSE_BOX_RATIO = 16
+
+
+def _parts(coords: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Split voxel indices at empty planes into parts no component crosses: (indices into
+    ``coords``, box low corner, box shape) per part.
+
+    >>> c = np.array([[0, 0, 0], [0, 0, 1], [300, 300, 0]])
+    >>> [p[0].tolist() for p in sorted(_parts(c), key=lambda p: p[0][0])]
+    [[0, 1], [2]]
+    """
+    out, stack = [], [np.arange(len(coords))] if len(coords) else []
+    while stack:
+        index = stack.pop()
+        sub = coords[index]
+        low = sub.min(axis=0)
+        shape = sub.max(axis=0) - low + 1
+        size = int(np.prod(shape))
+        if size <= max(SMALL_BOX_VOXELS, DENSE_BOX_RATIO * len(index)):
+            out.append((index, low, shape))
+            continue
+        for axis in np.argsort(-shape, kind="stable"):
+            plane = sub[:, axis] - low[axis]
+            used = np.bincount(plane, minlength=int(shape[axis])) > 0
+            if used.all():
+                continue
+            starts = used & ~np.r_[False, used[:-1]]
+            run = (np.cumsum(starts) - 1)[plane]
+            run = run.astype(np.uint16 if starts.sum() < 1 << 16 else np.int64)
+            order = np.argsort(run, kind="stable")
+            stack.extend(np.split(index[order], np.cumsum(np.bincount(run))[:-1]))
+            break
+        else:
+            out.append((index, low, shape))
+    return out
+
+
+def _number_parts(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
+    """A component number per voxel (1..count, in no particular order) and the count."""
+    ids = np.zeros(len(coords), dtype=np.int64)
+    total = 0
+    for index, low, shape in _parts(coords):
+        local = tuple((coords[index] - low).T)
+        box = np.zeros(tuple(int(s) for s in shape), dtype=np.uint8)
+        box[local] = 1
+        raw, count = _connected(box, connectivity)
+        ids[index] = raw[local].astype(np.int64) + total
         total += count
-    if not ids:
-        return np.zeros((0, 3), dtype=np.int64), np.zeros(0, dtype=np.int64)
-    return np.concatenate(coords), np.concatenate(ids)
+    return ids, total
 
 
-def _occupied_parts(volume: np.ndarray, *, depth: int = 0) -> list[tuple[slice, slice, slice]]:
-    """Tight boxes covering the non-zero voxels, split at empty planes along any axis.
+def _largest_first(raw: np.ndarray, count: int) -> np.ndarray:
+    """Renumber components 1..count by size (largest first), ties by first voxel (the voxels
+    are in raster order).
 
-    >>> v = np.zeros((9, 4, 4), np.uint8); v[1, 1, 1] = v[7, 2, 2] = 1
-    >>> [(b[0].start, b[0].stop) for b in _occupied_parts(v)]
-    [(1, 2), (7, 8)]
+    >>> _largest_first(np.array([2, 1, 2, 3, 3]), 3).tolist()
+    [1, 3, 1, 2, 2]
     """
-    z = volume.any(axis=(1, 2))
-    yx = volume.any(axis=0)
-    runs = [_runs(z), _runs(yx.any(axis=1)), _runs(yx.any(axis=0))]
-    if not runs[0]:
-        return []
-    tight = tuple(slice(r[0][0], r[-1][1]) for r in runs)
-    split = next((a for a in range(3) if len(runs[a]) > 1), None)
-    if split is None or depth > 12:
-        return [tight]
-    parts = []
-    for start, stop in runs[split]:
-        box = list(tight)
-        box[split] = slice(start, stop)
-        sub = tuple(box)
-        for inner in _occupied_parts(volume[sub], depth=depth + 1):
-            parts.append(tuple(slice(o.start + i.start, o.start + i.stop)
-                               for o, i in zip(sub, inner)))
-    return parts
-
-
-def _runs(flags: np.ndarray) -> list[tuple[int, int]]:
-    """(start, stop) of each run of True values.
-
-    >>> _runs(np.array([0, 1, 1, 0, 1], bool))
-    [(1, 3), (4, 5)]
-    """
-    edges = np.flatnonzero(np.diff(np.r_[0, flags.astype(np.int8), 0]))
-    return list(zip(edges[::2].tolist(), edges[1::2].tolist()))
-
-
-def _nonzero_voxels(volume: np.ndarray) -> np.ndarray:
-    """(n, 3) indices of the non-zero voxels of a C-ordered 3-D array, in raster order.
-
-    One fast reduction finds the occupied rows; only those rows are searched, so a sparse
-    volume costs little more than one pass (``np.argwhere`` on the whole volume is ~20x slower
-    here).
-
-    >>> v = np.zeros((2, 3, 4), np.uint8); v[1, 2, 3] = v[0, 1, 0] = 5
-    >>> _nonzero_voxels(v).tolist()
-    [[0, 1, 0], [1, 2, 3]]
-    """
-    rows = np.argwhere(volume.any(axis=2))
-    r, x = np.nonzero(volume[rows[:, 0], rows[:, 1]])
-    return np.column_stack([rows[r, 0], rows[r, 1], x])
+    if count == 0:
+        return raw
+    small = raw.astype(np.uint16) if count < 1 << 16 else raw
+    order = np.argsort(small, kind="stable")      # radix sort for 16-bit keys
+    sizes = np.bincount(raw, minlength=count + 1)[1:]
+    first = order[np.r_[0, np.cumsum(sizes)[:-1]]]
+    rank = np.empty(count + 1, dtype=np.int64)
+    rank[0] = 0
+    rank[1 + np.lexsort((first, -sizes))] = np.arange(1, count + 1)
+    return rank[raw]
 
 
 def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, ...] | None = None,
@@ -296,44 +369,84 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
     >>> table.volume_mm3.tolist(), table.centroid_x_mm.tolist(), offset
     ([8.0], [1.5], (1, 1, 1))
     """
-    data = np.asarray(data)
-    affine = np.asarray(affine, dtype=np.float64)
-    components, offset, voxels = _label(data, labels, connectivity, name)
-    voxel_mm3 = float(abs(np.linalg.det(affine[:3, :3])))
-    rows = _measure(voxels, components, offset, data, affine, voxel_mm3)
-    table = pd.DataFrame(rows, columns=list(MEASURE_COLUMNS))
-    table = _finish(table, data.shape, measurable_min_diameter_mm, measurable_min_slices)
-    if min_volume_mm3 > 0 and len(table):
-        keep = table.volume_mm3 >= min_volume_mm3
-        if not keep.all():
-            components, table = _drop_small(components, table, keep)
+    table, found = measure_components(
+        data, affine, labels=labels, connectivity=connectivity, min_volume_mm3=min_volume_mm3,
+        measurable_min_diameter_mm=measurable_min_diameter_mm,
+        measurable_min_slices=measurable_min_slices, name=name)
+    components, offset = found.image()
     return table, components, offset
 
 
-def _measure(vox: np.ndarray, components: np.ndarray, offset: tuple[int, int, int],
-             data: np.ndarray, affine: np.ndarray, voxel_mm3: float) -> list[dict]:
-    """One row of measures per component, computed for all components at once; ``vox`` are
-    lesion voxel indices grouped by component (1, 2, ...)."""
-    if len(vox) == 0:
-        return []
-    local = vox - np.asarray(offset)
-    ids = components[local[:, 0], local[:, 1], local[:, 2]].astype(np.int64)
-    values = data[vox[:, 0], vox[:, 1], vox[:, 2]]
-    count = int(ids[-1])
-    starts = np.searchsorted(ids, np.arange(1, count + 1))
-    sizes = np.diff(np.r_[starts, len(ids)])
-    centres = np.add.reduceat(vox.astype(np.float64), starts) / sizes[:, None]
+def measure_components(data: np.ndarray, affine: np.ndarray, *,
+                       labels: tuple[int, ...] | None = None, connectivity: int = 26,
+                       min_volume_mm3: float = 0.0, measurable_min_diameter_mm: float = 10.0,
+                       measurable_min_slices: int = 2, name: str = "mask"
+                       ) -> tuple[pd.DataFrame, LesionVoxels]:
+    """:func:`component_table` with the components kept sparse (what a batch holds per scan)."""
+    data = np.asarray(data)
+    affine = np.asarray(affine, dtype=np.float64)
+    found = lesion_voxels(data, connectivity, labels, name)
+    voxel_mm3 = float(abs(np.linalg.det(affine[:3, :3])))
+    table = _measure(found, data.shape, affine, voxel_mm3, measurable_min_diameter_mm,
+                     measurable_min_slices)
+    if min_volume_mm3 > 0 and len(table):
+        keep = table.volume_mm3.to_numpy() >= min_volume_mm3
+        if not keep.all():
+            found = found.keep(table.component.to_numpy()[keep])
+            table = table[keep].reset_index(drop=True)
+            table["component"] = np.arange(1, len(table) + 1, dtype=np.int64)
+    return table, found
+
+
+def _measure(found: LesionVoxels, shape: tuple[int, ...], affine: np.ndarray, voxel_mm3: float,
+             min_diameter: float, min_slices: int) -> pd.DataFrame:
+    """One row of measures per component (``MEASURE_COLUMNS``), computed for all at once."""
+    count = found.count
+    group = np.argsort(found.ids.astype(np.uint16) if count < 1 << 16 else found.ids,
+                       kind="stable")                      # by component, raster order within
+    vox, ids = found.voxels[group], found.ids[group]
+    sizes = np.bincount(ids, minlength=count + 1)[1:]
+    starts = np.r_[0, np.cumsum(sizes)[:-1]].astype(np.int64)
+    if count:
+        centres = np.add.reduceat(vox.astype(np.float64), starts) / sizes[:, None]
+        low, high = np.minimum.reduceat(vox, starts), np.maximum.reduceat(vox, starts)
+        labels = _mode_per_group(ids, found.values[group], count).astype(np.int64)
+    else:
+        centres, low, high = np.zeros((0, 3)), np.zeros((0, 3), np.int64), np.zeros((0, 3),
+                                                                                  np.int64)
+        labels = np.zeros(0, np.int64)
     centres = centres @ affine[:3, :3].T + affine[:3, 3]
-    low, high = np.minimum.reduceat(vox, starts), np.maximum.reduceat(vox, starts)
-    labels = _mode_per_group(ids, values, count)
-    diameters, slices = _axial_diameters(vox, ids, count, affine, axial_axis(affine))
-    return [{"component": c + 1, "label": int(labels[c]), "voxels": int(sizes[c]),
-             "volume_mm3": int(sizes[c]) * voxel_mm3, "centroid_x_mm": centres[c, 0],
-             "centroid_y_mm": centres[c, 1], "centroid_z_mm": centres[c, 2],
-             "max_axial_diameter_mm": float(diameters[c]), "bbox_i_min": low[c, 0],
-             "bbox_i_max": high[c, 0], "bbox_j_min": low[c, 1], "bbox_j_max": high[c, 1],
-             "bbox_k_min": low[c, 2], "bbox_k_max": high[c, 2], "axial_slices": int(slices[c])}
-            for c in range(count)]
+    axis = axial_axis(affine)
+    diameters, slices = _axial_diameters(vox, ids, count, affine, axis,
+                                         _row_axes(axis, found.fortran))
+    volume = sizes.astype(np.int64) * voxel_mm3
+    edge = np.asarray(shape[:3]) - 1
+    columns = {
+        "component": np.arange(1, count + 1, dtype=np.int64), "label": labels,
+        "voxels": sizes.astype(np.int64), "volume_mm3": volume,
+        "centroid_x_mm": centres[:, 0], "centroid_y_mm": centres[:, 1],
+        "centroid_z_mm": centres[:, 2], "max_axial_diameter_mm": diameters,
+        "equivalent_diameter_mm": np.cbrt(6.0 * volume / np.pi),
+        "bbox_i_min": low[:, 0].astype(np.int64), "bbox_i_max": high[:, 0].astype(np.int64),
+        "bbox_j_min": low[:, 1].astype(np.int64), "bbox_j_max": high[:, 1].astype(np.int64),
+        "bbox_k_min": low[:, 2].astype(np.int64), "bbox_k_max": high[:, 2].astype(np.int64),
+        "axial_slices": slices.astype(np.int64),
+        "touches_border": (low == 0).any(axis=1) | (high == edge).any(axis=1),
+        "measurable": (diameters >= min_diameter) & (slices >= min_slices)}
+    return pd.DataFrame(columns, columns=list(MEASURE_COLUMNS))
+
+
+def _row_axes(axis: int, fortran: bool) -> tuple[int, int]:
+    """The two in-slice axes in the order the raster order of the memory layout sorts them
+    (rows along the faster one), so voxels in raster order need no sorting when the axial axis
+    is the slowest.
+
+    >>> _row_axes(2, True), _row_axes(2, False)
+    ((1, 0), (0, 1))
+    """
+    significance = (2, 1, 0) if fortran else (0, 1, 2)
+    p, q = (a for a in significance if a != axis)
+    return p, q
 
 
 def _mode_per_group(ids: np.ndarray, values: np.ndarray, count: int) -> np.ndarray:
@@ -355,26 +468,36 @@ def _mode_per_group(ids: np.ndarray, values: np.ndarray, count: int) -> np.ndarr
 
 
 def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.ndarray,
-                     axis: int) -> tuple[np.ndarray, np.ndarray]:
+                     axis: int, rows: tuple[int, int] | None = None
+                     ) -> tuple[np.ndarray, np.ndarray]:
     """Longest in-slice distance (mm) and number of axial slices, per component 1..count.
 
-    Same rule as :func:`max_axial_diameter` (row-end voxels are the only hull candidates), for
-    all components at once: the (component, slice) groups are compared in batches of similar
-    size through one Gram product each.
+    Same rule as :func:`max_axial_diameter` (row-end voxels are the only hull candidates: a
+    voxel between two others of its row cannot be a vertex of the hull, whichever in-slice
+    axis the rows follow), for all components at once: the (component, slice) groups are
+    compared in batches of similar size through one Gram product each. ``rows`` = (p, q) are
+    the in-slice axes, rows along q; voxels already sorted that way are not sorted again.
     """
-    p, q = [a for a in range(3) if a != axis]
+    if count == 0:
+        return np.zeros(0), np.zeros(0, dtype=np.int64)
+    p, q = rows or [a for a in range(3) if a != axis]
     span = vox.max(axis=0).astype(np.int64) + 1
     slice_key = ids * span[axis] + vox[:, axis]                  # (component, slice)
     row_key = slice_key * span[p] + vox[:, p]                     # (component, slice, row)
-    order = np.argsort(row_key * span[q] + vox[:, q], kind="stable")
-    v, g, rows = vox[order], ids[order], row_key[order]
+    key = row_key * span[q] + vox[:, q]
+    if np.all(key[1:] >= key[:-1]):
+        v, g, rows_sorted, ck_all = vox, ids, row_key, slice_key
+    else:
+        order = np.argsort(key, kind="stable")
+        v, g, rows_sorted, ck_all = vox[order], ids[order], row_key[order], slice_key[order]
+    rows = rows_sorted
     flag = np.zeros(len(v), dtype=bool)
     flag[0] = flag[-1] = True
     edge = rows[1:] != rows[:-1]
     flag[1:] |= edge                                              # first voxel of each row
     flag[:-1] |= edge                                             # last voxel of each row
     pick = np.flatnonzero(flag)
-    cand, cg, ck = v[pick], g[pick], slice_key[order][pick]
+    cand, cg, ck = v[pick], g[pick], ck_all[pick]
     group_start = np.flatnonzero(np.r_[True, ck[1:] != ck[:-1]])
     group_size = np.diff(np.r_[group_start, len(cand)])
     group_comp = cg[group_start]
@@ -405,35 +528,6 @@ def _group_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
     squared = norms[:, :, None] + norms[:, None, :] - 2.0 * (padded @ padded.transpose(0, 2, 1))
     squared[~(valid[:, :, None] & valid[:, None, :])] = 0.0
     return np.sqrt(np.maximum(squared.reshape(len(starts), -1).max(axis=1), 0.0))
-
-
-def _finish(table: pd.DataFrame, shape: tuple[int, ...], min_diameter: float,
-            min_slices: int) -> pd.DataFrame:
-    table = table.copy()
-    table["equivalent_diameter_mm"] = np.cbrt(6.0 * table.volume_mm3.astype(float) / np.pi)
-    lows = table[["bbox_i_min", "bbox_j_min", "bbox_k_min"]].to_numpy()
-    highs = table[["bbox_i_max", "bbox_j_max", "bbox_k_max"]].to_numpy()
-    edge = np.asarray(shape[:3]) - 1
-    table["touches_border"] = (lows == 0).any(axis=1) | (highs == edge).any(axis=1)
-    table["measurable"] = (table.max_axial_diameter_mm >= min_diameter) & \
-        (table.axial_slices >= min_slices)
-    for name in ("component", "label", "voxels", "axial_slices") + tuple(
-            c for c in MEASURE_COLUMNS if c.startswith("bbox")):
-        table[name] = table[name].astype("int64")
-    table["touches_border"] = table.touches_border.astype(bool)
-    table["measurable"] = table.measurable.astype(bool)
-    return table
-
-
-def _drop_small(components: np.ndarray, table: pd.DataFrame, keep: pd.Series
-                ) -> tuple[np.ndarray, pd.DataFrame]:
-    """Remove components below the minimum volume and renumber the rest 1..m in order."""
-    mapping = np.zeros(len(table) + 1, dtype=np.int32)
-    kept = table.component[keep].to_numpy()
-    mapping[kept] = np.arange(1, len(kept) + 1, dtype=np.int32)
-    table = table[keep].copy()
-    table["component"] = np.arange(1, len(kept) + 1)
-    return mapping[components], table.reset_index(drop=True)
 
 
 def scan_table(table: pd.DataFrame, *, subject: str, session: str, day: float, mask: str,

@@ -154,3 +154,47 @@ def test_check_reports_and_writes_nothing(tmp_path, capsys):
     out = capsys.readouterr().out
     assert code == 1 and "missing.nii.gz: file not found" in out
     assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+def _decoded_or_reason(raw, needed, module):
+    """The decoded bytes, or 'truncated'/'corrupt' from the one-line error."""
+    from pipeline.errors import InputError
+    from pipeline.io import _decompress_into
+
+    try:
+        return bytes(_decompress_into(raw, needed, "m.nii.gz", module))
+    except InputError as exc:
+        assert "\n" not in str(exc) and str(exc).startswith("m.nii.gz: gzip data is ")
+        return "truncated" if "truncated" in str(exc) else "corrupt"
+
+
+@pytest.mark.parametrize("damage", ["none", "half", "trailer cut", "crc flipped", "body flipped",
+                                    "longer than declared"])
+def test_both_gzip_decoders_agree_with_the_standard_library(damage):
+    # Reference: Python's gzip module (RFC 1952 reader of the standard library): what it decodes
+    # we decode byte for byte; what it refuses we refuse (one line, truncated or corrupt), with
+    # the ISA-L decoder (python-isal, used by default) and the zlib fallback alike.
+    import zlib
+
+    from isal import isal_zlib
+
+    data = np.random.default_rng(7).integers(0, 4, 300_000).astype(np.uint8).tobytes()
+    raw = bytearray(gzip.compress(data, mtime=0))
+    needed = len(data)
+    if damage == "half":
+        raw = raw[: len(raw) // 2]
+    elif damage == "trailer cut":
+        raw = raw[:-4]
+    elif damage == "crc flipped":
+        raw[-6] ^= 0xFF
+    elif damage == "body flipped":
+        raw[len(raw) // 2] ^= 0x10
+    elif damage == "longer than declared":
+        needed -= 1000
+    raw = bytes(raw)
+    try:
+        expected = gzip.decompress(raw)[:needed]
+    except (EOFError, OSError, zlib.error) as exc:
+        expected = "truncated" if isinstance(exc, EOFError) else "corrupt"
+    for module in (isal_zlib, zlib):
+        assert _decoded_or_reason(raw, needed, module) == expected, (damage, module.__name__)

@@ -66,9 +66,15 @@ def rows(table, columns=WORLD) -> list[tuple]:
 def assert_same_rows(a, b, *, rtol=1e-9, atol=1e-6, columns=WORLD):
     assert len(a) == len(b)
     key = ["voxels", "centroid_x_mm", "centroid_y_mm", "centroid_z_mm"]
-    a = a.sort_values(key).reset_index(drop=True)[columns].astype(float).to_numpy()
-    b = b.sort_values(key).reset_index(drop=True)[columns].astype(float).to_numpy()
+    # Rows are paired by a rounded key: float noise of 1e-16 in a centroid (an affine with
+    # 2e-16 off-diagonal terms, float32 header precision) must not reorder equal rows.
+    a, b = _paired(a, key, columns), _paired(b, key, columns)
     np.testing.assert_allclose(a, b, rtol=rtol, atol=atol)
+
+
+def _paired(table, key, columns):
+    order = np.lexsort([np.round(table[k].to_numpy(float), 4) for k in reversed(key)])
+    return table[columns].astype(float).to_numpy()[order]
 
 
 def measure(data, affine, **options):
