@@ -11,7 +11,7 @@ from pathlib import Path
 import pandas as pd
 
 from pipeline import __version__
-from pipeline.batch import ScanResult, run_tasks, volumes_task
+from pipeline.batch import ScanResult, run_tasks, start_pool_server, volumes_task
 from pipeline.config import Config
 from pipeline.inputs import Scan, read_inputs
 from pipeline.tables import write_sidecar, write_table
@@ -72,6 +72,8 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     With ``write=False`` nothing is written (used to rebuild stage 1 from the cache for
     ``match OUT``).
     """
+    if scheduler is None:
+        start_pool_server(workers)      # its imports overlap the reading of the inputs
     scans, kind = read_inputs(input_path, desc=config.volumes.desc)
     stage = Stage1(scans=scans, kind=kind)
     for scan in scans:
