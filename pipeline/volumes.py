@@ -301,17 +301,66 @@ def _parts(coords: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]
 
 
 def _number_parts(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
-    """A component number per voxel (1..count, in no particular order) and the count."""
+    """A component number per voxel (1..count, in no particular order) and the count.
+
+    A compact part is labelled in a box of its own; a part whose box would be mostly empty
+    (scattered specks no empty plane separates) is labelled as a graph of neighbouring voxels,
+    so memory follows the lesion voxels, not the image."""
     ids = np.zeros(len(coords), dtype=np.int64)
     total = 0
     for index, low, shape in _parts(coords):
-        local = tuple((coords[index] - low).T)
-        box = np.zeros(tuple(int(s) for s in shape), dtype=np.uint8)
-        box[local] = 1
-        raw, count = _connected(box, connectivity)
-        ids[index] = raw[local].astype(np.int64) + total
+        local = coords[index] - low
+        if int(np.prod(shape)) > max(SMALL_BOX_VOXELS, DENSE_BOX_RATIO * len(index)):
+            raw, count = _graph_components(local, connectivity)
+        else:
+            at = tuple(local.T)
+            box = np.zeros(tuple(int(s) for s in shape), dtype=np.uint8)
+            box[at] = 1
+            labelled, count = _connected(box, connectivity)
+            raw = labelled[at]
+        ids[index] = raw.astype(np.int64) + total
         total += count
     return ids, total
+
+
+def _graph_components(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
+    """Connected components of voxels given by their (n, 3) indices (raster order, no
+    duplicates), without an image: each voxel is joined to its neighbours found by binary
+    search, and scipy's connected_components labels the graph. Component numbers 1..count.
+
+    >>> c = np.array([[0, 0, 0], [1, 1, 1], [5, 5, 5]])
+    >>> _graph_components(c, 26)[0].tolist(), _graph_components(c, 6)[1]
+    ([1, 1, 2], 3)
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    n = len(coords)
+    span = coords.max(axis=0) + 3          # shifted by 1 with a margin each side: no wrapping
+    linear = np.ravel_multi_index(tuple((coords + 1).T), span)
+    heads, tails = [], []
+    for step in _forward_steps(connectivity):
+        target = np.ravel_multi_index(tuple((coords + 1 + step).T), span)
+        at = np.minimum(np.searchsorted(linear, target), n - 1)
+        hit = linear[at] == target
+        heads.append(np.flatnonzero(hit))
+        tails.append(at[hit])
+    head, tail = np.concatenate(heads), np.concatenate(tails)
+    graph = coo_matrix((np.ones(len(head), np.int8), (head, tail)), shape=(n, n))
+    count, labels = connected_components(graph, directed=False)
+    return labels + 1, int(count)
+
+
+def _forward_steps(connectivity: int) -> np.ndarray:
+    """Half of the 6/18/26 neighbour offsets (the other half are their negatives).
+
+    >>> [len(_forward_steps(c)) for c in (6, 18, 26)]
+    [3, 9, 13]
+    """
+    grid = np.stack(np.meshgrid(*[[-1, 0, 1]] * 3, indexing="ij"), axis=-1).reshape(-1, 3)
+    reach = {6: 1, 18: 2, 26: 3}[connectivity]
+    forward = [s for s in grid if tuple(s) > (0, 0, 0) and np.abs(s).sum() <= reach]
+    return np.asarray(forward, dtype=np.int64)
 
 
 def _largest_first(raw: np.ndarray, count: int) -> np.ndarray:
