@@ -123,7 +123,7 @@ def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int,
                           f"{type(exc).__name__}: {exc} (at {os.path.basename(where.filename)}:"
                           f"{where.lineno})")
     offset, shape, where, ids = found.flat()
-    components = SparseImage(shape, ids.dtype.str, found.order, _small_index(where, shape), ids)
+    components = SparseImage.from_voxels(shape, ids.dtype, found.order, where, ids)
     return ScanResult(subject, session, table=table, components=components, offset=offset,
                       shape=tuple(int(s) for s in mask.data.shape[:3]), affine=mask.affine,
                       file_affine=mask.file_affine, units_code=mask.units_code,
@@ -252,14 +252,17 @@ def _crashed(task: Task) -> ScanResult:
 
 @dataclass(frozen=True)
 class SparseImage:
-    """A mostly-zero array as its non-zero voxels: what a worker sends back instead of the
-    crop-box component image, and how stage 1 keeps every scan's components in memory and in
-    its cache (tens of MB dense, a few hundred kB this way)."""
+    """A mostly-zero array as runs of equal non-zero values along its memory order: what a
+    worker sends back instead of the crop-box component image, and how stage 1 keeps every
+    scan's components in memory and in its cache. A lesion is a few thousand runs, so this is
+    tens of kB where the dense box is tens of MB (and a list of voxel indices 5-8x more).
+    ``starts`` are flat indices (in ``order``) of each run's first voxel, ascending."""
 
     shape: tuple[int, ...]
     dtype: str
     order: str
-    where: np.ndarray
+    starts: np.ndarray
+    lengths: np.ndarray
     values: np.ndarray
 
     @classmethod
@@ -267,18 +270,46 @@ class SparseImage:
         order = "F" if array.flags.f_contiguous and not array.flags.c_contiguous else "C"
         flat = array.ravel(order=order)
         where = nonzero_flat(flat)
-        return cls(array.shape, array.dtype.str, order, _small_index(where, array.shape),
-                   flat[where])
+        return cls.from_voxels(array.shape, array.dtype, order, where, flat[where])
+
+    @classmethod
+    def from_voxels(cls, shape: tuple[int, ...], dtype: Any, order: str, where: np.ndarray,
+                    values: np.ndarray) -> SparseImage:
+        """From ascending flat indices of the non-zero voxels and their values.
+
+        >>> s = SparseImage.from_voxels((2, 3), np.uint8, "C", np.array([1, 2, 3, 5]),
+        ...                             np.array([4, 4, 4, 7]))
+        >>> s.starts.tolist(), s.lengths.tolist(), s.values.tolist()
+        ([1, 5], [3, 1], [4, 7])
+        >>> s.array().tolist()
+        [[0, 4, 4], [4, 0, 7]]
+        """
+        where = np.asarray(where, dtype=np.int64)
+        values = np.asarray(values)
+        if len(where):
+            step = (np.diff(where) != 1) | (values[1:] != values[:-1])
+            first = np.flatnonzero(np.r_[True, step])
+        else:
+            first = np.zeros(0, dtype=np.int64)
+        lengths = np.diff(np.r_[first, len(where)])
+        size = int(np.prod(shape))
+        index_type = np.uint32 if size < 2 ** 32 else np.int64
+        return cls(tuple(int(s) for s in shape), np.dtype(dtype).str, order,
+                   where[first].astype(index_type), lengths.astype(index_type),
+                   values[first].astype(dtype))
+
+    @property
+    def where(self) -> np.ndarray:
+        """Flat indices of every non-zero voxel, ascending."""
+        lengths = self.lengths.astype(np.int64)
+        ends = np.cumsum(lengths)
+        return np.repeat(self.starts.astype(np.int64) - (ends - lengths), lengths) + \
+            np.arange(int(ends[-1]) if len(ends) else 0)
 
     def array(self) -> np.ndarray:
         flat = np.zeros(int(np.prod(self.shape)), np.dtype(self.dtype))
-        flat[self.where] = self.values
+        flat[self.where] = np.repeat(self.values, self.lengths.astype(np.int64))
         return flat.reshape(self.shape, order=self.order)
-
-
-def _small_index(where: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
-    """Flat indices as uint32 when the image is small enough (half the bytes to hold or send)."""
-    return where.astype(np.uint32) if int(np.prod(shape)) < 2 ** 32 else where
 
 
 def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:

@@ -38,7 +38,8 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
 
     sparse = result.components if isinstance(result.components, SparseImage) else \
         SparseImage.of(result.components)
-    np.savez(buffer, **columns, where=sparse.where, values=sparse.values,
+    np.savez(buffer, **columns, run_starts=sparse.starts, run_lengths=sparse.lengths,
+             run_values=sparse.values,
              image_shape=np.asarray(sparse.shape), image_dtype=np.asarray(sparse.dtype),
              image_order=np.asarray(sparse.order), offset=np.asarray(result.offset),
              shape=np.asarray(result.shape), affine=result.affine,
@@ -68,7 +69,7 @@ def load_result(folder: Path, key: str, subject: str, session: str, mask_path: s
             warnings = [w.replace(PATH_MARK, mask_path) for w in json.loads(str(data["warnings"]))]
             image = SparseImage(tuple(int(v) for v in data["image_shape"]),
                                 str(data["image_dtype"]), str(data["image_order"]),
-                                data["where"], data["values"])
+                                data["run_starts"], data["run_lengths"], data["run_values"])
             return ScanResult(subject, session, table=table, components=image,
                               offset=tuple(int(v) for v in data["offset"]),
                               shape=tuple(int(v) for v in data["shape"]),
