@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import functools
 import hashlib
 import os
 import sys
@@ -19,23 +20,29 @@ from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 from itertools import chain, islice
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from pipeline.errors import InputError, UsageError
 from pipeline.settings import VolumeSettings
 from pipeline.volumes import nonzero_flat
 
+if TYPE_CHECKING:
+    import pandas as pd
+
 
 @dataclass(frozen=True, eq=False)
 class ScanResult:
-    """What stage 1 learns from one mask (picklable, small)."""
+    """What stage 1 learns from one mask (picklable, small).
+
+    The component rows travel as plain column arrays (``columns``, volumes.MEASURE_COLUMNS) so
+    that a worker never imports pandas; ``table`` is the DataFrame, built on first use.
+    """
 
     subject: str
     session: str
-    table: pd.DataFrame | None = None        # component rows (volumes.MEASURE_COLUMNS)
+    columns: dict[str, np.ndarray] | None = None
     components: np.ndarray | None = None     # crop-box component image
     offset: tuple[int, int, int] = (0, 0, 0)
     shape: tuple[int, int, int] = (0, 0, 0)
@@ -52,6 +59,15 @@ class ScanResult:
     @property
     def ok(self) -> bool:
         return not self.error
+
+    @functools.cached_property
+    def table(self) -> pd.DataFrame | None:
+        """The component rows as a DataFrame (None for a failed scan)."""
+        if self.columns is None:
+            return None
+        from pipeline.volumes import as_table
+
+        return as_table(self.columns)
 
     def component_image(self) -> np.ndarray:
         """The crop-box component image, dense (whether kept dense or sparse)."""
@@ -104,11 +120,11 @@ def _read(path: str) -> bytes | None:
 def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int, ...] | None,
                   settings: VolumeSettings, raw: bytes | None) -> ScanResult:
     from pipeline.io import load_mask
-    from pipeline.volumes import measure_components
+    from pipeline.volumes import measure_columns
 
     try:
         mask = load_mask(mask_path, settings=settings, raw=raw)
-        table, found = measure_components(
+        columns, found = measure_columns(
             mask.data, mask.affine, labels=labels, connectivity=settings.connectivity,
             min_volume_mm3=settings.min_volume_mm3,
             measurable_min_diameter_mm=settings.measurable_min_diameter_mm,
@@ -124,7 +140,7 @@ def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int,
                           f"{where.lineno})")
     offset, shape, where, ids = found.flat()
     components = SparseImage.from_voxels(shape, ids.dtype, found.order, where, ids)
-    return ScanResult(subject, session, table=table, components=components, offset=offset,
+    return ScanResult(subject, session, columns=columns, components=components, offset=offset,
                       shape=tuple(int(s) for s in mask.data.shape[:3]), affine=mask.affine,
                       file_affine=mask.file_affine, units_code=mask.units_code,
                       forms=mask.forms, form_codes=mask.form_codes,

@@ -11,9 +11,8 @@ import json
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
-from pipeline.tables import atomic_path
+from pipeline.files import atomic_path
 
 
 def cache_key(sha256: str, settings_digest: str, labels: tuple[int, ...] | None) -> str:
@@ -32,7 +31,7 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
     path is taken out of warnings: the same content may come back under another name.
     """
     buffer = io.BytesIO()
-    columns = {f"col_{name}": result.table[name].to_numpy() for name in result.table.columns}
+    columns = {f"col_{name}": np.asarray(values) for name, values in result.columns.items()}
     warnings = [w.replace(mask_path, PATH_MARK) for w in result.warnings]
     from pipeline.batch import SparseImage
 
@@ -46,7 +45,7 @@ def save_result(folder: Path, key: str, result, mask_path: str) -> None:
              file_affine=result.file_affine, units_code=np.asarray(result.units_code),
              forms=np.full((2, 4, 4), np.nan) if result.forms is None else result.forms,
              form_codes=np.asarray(result.form_codes),
-             columns=np.asarray(list(result.table.columns)),
+             columns=np.asarray(list(result.columns)),
              warnings=np.asarray(json.dumps(warnings)),
              sha256=np.asarray(result.sha256))
     with atomic_path(folder / f"{key}.npz") as tmp:
@@ -63,14 +62,12 @@ def load_result(folder: Path, key: str, subject: str, session: str, mask_path: s
         return None
     try:
         with np.load(path, allow_pickle=False) as data:
-            names = [str(n) for n in data["columns"]]
-            table = pd.DataFrame({n: data[f"col_{n}"] for n in names}, columns=names)
-            table = table.reindex(columns=list(MEASURE_COLUMNS))
+            columns = {name: data[f"col_{name}"] for name in MEASURE_COLUMNS}
             warnings = [w.replace(PATH_MARK, mask_path) for w in json.loads(str(data["warnings"]))]
             image = SparseImage(tuple(int(v) for v in data["image_shape"]),
                                 str(data["image_dtype"]), str(data["image_order"]),
                                 data["run_starts"], data["run_lengths"], data["run_values"])
-            return ScanResult(subject, session, table=table, components=image,
+            return ScanResult(subject, session, columns=columns, components=image,
                               offset=tuple(int(v) for v in data["offset"]),
                               shape=tuple(int(v) for v in data["shape"]),
                               affine=data["affine"], file_affine=data["file_affine"],

@@ -75,6 +75,14 @@ def _config(path: Path | None, desc: str | None = None, forecast: float | None =
     return load_config(path, **overrides)
 
 
+def _start_pool(workers: int, scheduler: str | None) -> None:
+    """Start the worker pool's fork server first, so its imports overlap this process's own."""
+    if scheduler is None and workers >= 0:
+        from pipeline.batch import start_pool_server
+
+        start_pool_server(workers)
+
+
 @app.command(epilog=EPILOG)
 @_guard
 def run(input: Path = InputArg, out: Path = OutOpt, events: Path | None = EventsOpt,
@@ -83,6 +91,7 @@ def run(input: Path = InputArg, out: Path = OutOpt, events: Path | None = Events
         desc: str | None = DescOpt, forecast_days: float | None = ForecastOpt,
         quiet: bool = QuietOpt) -> None:
     """Every stage: volumes, matching, fitting, report."""
+    _start_pool(workers, scheduler)
     from pipeline.workflow import run_all
 
     settings = _config(config, desc, forecast_days)
@@ -97,6 +106,7 @@ def volumes(input: Path = InputArg, out: Path = OutOpt, config: Path | None = Co
             workers: int = WorkersOpt, scheduler: str | None = SchedulerOpt,
             desc: str | None = DescOpt, quiet: bool = QuietOpt) -> None:
     """Stage 1 alone: lesions.tsv (one row per connected lesion component)."""
+    _start_pool(workers, scheduler)
     from pipeline.workflow import volumes_only
 
     settings = _config(config, desc)
@@ -168,6 +178,7 @@ def demo(out: Path = typer.Argument(..., help="Folder for the demo inputs and ou
          subjects: int = typer.Option(12, "--subjects", min=1, max=99,
                                       help="Number of invented patients.")) -> None:
     """Make the invented demo cohort under OUT/inputs and run every stage on it."""
+    _start_pool(workers, None)
     from pipeline.workflow import run_demo
 
     raise typer.Exit(run_demo(out, workers=workers, quiet=quiet, subjects=subjects))

@@ -18,7 +18,7 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.settings import VolumeSettings
-from pipeline.tables import atomic_path
+from pipeline.files import atomic_path
 
 NIFTI_SUFFIXES = (".nii", ".nii.gz")
 ITK_SUFFIXES = (".nrrd", ".nhdr", ".mha", ".mhd")

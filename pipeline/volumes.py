@@ -2,9 +2,12 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 @dataclass(frozen=True, eq=False)
@@ -432,24 +435,44 @@ def measure_components(data: np.ndarray, affine: np.ndarray, *,
                        measurable_min_slices: int = 2, name: str = "mask"
                        ) -> tuple[pd.DataFrame, LesionVoxels]:
     """:func:`component_table` with the components kept sparse (what a batch holds per scan)."""
+    columns, found = measure_columns(
+        data, affine, labels=labels, connectivity=connectivity, min_volume_mm3=min_volume_mm3,
+        measurable_min_diameter_mm=measurable_min_diameter_mm,
+        measurable_min_slices=measurable_min_slices, name=name)
+    return as_table(columns), found
+
+
+def as_table(columns: dict[str, np.ndarray]) -> pd.DataFrame:
+    """The component table (``MEASURE_COLUMNS``) from its columns."""
+    import pandas as pd
+
+    return pd.DataFrame(columns, columns=list(MEASURE_COLUMNS))
+
+
+def measure_columns(data: np.ndarray, affine: np.ndarray, *,
+                    labels: tuple[int, ...] | None = None, connectivity: int = 26,
+                    min_volume_mm3: float = 0.0, measurable_min_diameter_mm: float = 10.0,
+                    measurable_min_slices: int = 2, name: str = "mask"
+                    ) -> tuple[dict[str, np.ndarray], LesionVoxels]:
+    """:func:`measure_components` as plain column arrays: what a stage-1 worker computes
+    without importing pandas (a worker process starts faster without it)."""
     data = np.asarray(data)
     affine = np.asarray(affine, dtype=np.float64)
     found = lesion_voxels(data, connectivity, labels, name)
     voxel_mm3 = float(abs(np.linalg.det(affine[:3, :3])))
-    table = _measure(found, data.shape, affine, voxel_mm3, measurable_min_diameter_mm,
-                     measurable_min_slices)
-    if min_volume_mm3 > 0 and len(table):
-        keep = table.volume_mm3.to_numpy() >= min_volume_mm3
-        if not keep.all():
-            found = found.keep(table.component.to_numpy()[keep])
-            table = table[keep].reset_index(drop=True)
-            table["component"] = np.arange(1, len(table) + 1, dtype=np.int64)
-    return table, found
+    columns = _measure(found, data.shape, affine, voxel_mm3, measurable_min_diameter_mm,
+                       measurable_min_slices)
+    keep = columns["volume_mm3"] >= min_volume_mm3
+    if min_volume_mm3 > 0 and not keep.all():
+        found = found.keep(columns["component"][keep])
+        columns = {key: value[keep] for key, value in columns.items()}
+        columns["component"] = np.arange(1, int(keep.sum()) + 1, dtype=np.int64)
+    return columns, found
 
 
 def _measure(found: LesionVoxels, shape: tuple[int, ...], affine: np.ndarray, voxel_mm3: float,
-             min_diameter: float, min_slices: int) -> pd.DataFrame:
-    """One row of measures per component (``MEASURE_COLUMNS``), computed for all at once."""
+             min_diameter: float, min_slices: int) -> dict[str, np.ndarray]:
+    """Measures per component (``MEASURE_COLUMNS``), computed for all at once."""
     count = found.count
     group = np.argsort(found.ids.astype(np.uint16) if count < 1 << 16 else found.ids,
                        kind="stable")                      # by component, raster order within
@@ -482,7 +505,7 @@ def _measure(found: LesionVoxels, shape: tuple[int, ...], affine: np.ndarray, vo
         "axial_slices": slices.astype(np.int64),
         "touches_border": (low == 0).any(axis=1) | (high == edge).any(axis=1),
         "measurable": (diameters >= min_diameter) & (slices >= min_slices)}
-    return pd.DataFrame(columns, columns=list(MEASURE_COLUMNS))
+    return {name: columns[name] for name in MEASURE_COLUMNS}
 
 
 def _row_axes(axis: int, fortran: bool) -> tuple[int, int]:

@@ -327,3 +327,27 @@ def test_workers_zero_means_every_usable_core(monkeypatch):
         assert sizes == []
     else:
         assert sizes == [(cores, 4 * cores)]
+
+
+def test_stage1_worker_path_does_not_import_pandas(tmp_path):
+    # Common practice (start-up cost): the fork server preloads what a stage-1 task needs;
+    # pandas alone is ~0.3 s of that, and workers return plain column arrays instead.
+    import subprocess
+
+    mask = tmp_path / "m.nii.gz"
+    data = np.zeros((8, 8, 8), np.uint8)
+    data[2:4, 2:4, 2:4] = 1
+    import nibabel as nib
+
+    nib.save(nib.Nifti1Image(data, np.eye(4)), str(mask))
+    code = ("import sys\n"
+            "from pipeline.batch import PRELOAD, volumes_task\n"
+            "from pipeline.settings import VolumeSettings\n"
+            "for name in PRELOAD[1:]:\n"
+            "    __import__(name)\n"
+            f"r = volumes_task('s', '1', {str(mask)!r}, None, VolumeSettings(),\n"
+            f"                 {str(tmp_path)!r})\n"
+            "assert r.ok and list(r.columns['voxels']) == [8], r\n"
+            "print('pandas' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
