@@ -1,8 +1,9 @@
 """Stage-1 speed and memory next to the read floor and two other ways of doing the same job.
 
-Run: python benchmarks/volumes.py [--repeats 5] [--scaling-masks 1000]
+Run: python benchmarks/volumes.py [--repeats 15] [--scaling-masks 1000]
 
-Generates its own masks (invented blobs), then for each size times, in one process:
+Generates its own masks (invented blobs), then for each size times, in one process and in
+interleaved rounds (after one untimed call of each):
   floor     nibabel.load + np.asanyarray(img.dataobj)                 (what reading costs)
   tool      lesion-growth's stage 1 for one mask (read + every lesion figure)
   scipy     get_fdata + scipy.ndimage.label (26-conn) + one pass per label (naive script)
@@ -82,13 +83,18 @@ def simpleitk(path):
     return sorted(stats.GetNumberOfPixels(c) for c in stats.GetLabels())
 
 
-def timed(func, path, repeats):
-    times, result = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        result = func(path)
-        times.append(time.perf_counter() - t0)
-    return times, result
+def timed(methods, path, repeats):
+    """Times of each method, ``repeats`` rounds interleaved (floor, tool, ... then again), so a
+    change in the machine's state affects every method alike; one untimed warm-up call each."""
+    times = {name: [] for name in methods}
+    results = {name: func(path) for name, (func, _) in methods.items()}
+    for round_ in range(repeats):
+        for name, (func, rounds) in methods.items():
+            if round_ < rounds:
+                t0 = time.perf_counter()
+                results[name] = func(path)
+                times[name].append(time.perf_counter() - t0)
+    return times, results
 
 
 def peak_bytes(func, path):
@@ -102,10 +108,8 @@ def peak_bytes(func, path):
 def one_size(shape, folder, repeats):
     path = folder / f"mask_{'x'.join(map(str, shape))}.nii.gz"
     save(path, make_mask(shape, seed=sum(shape)))
-    rows, results = {}, {}
-    for name, func in (("floor", floor), ("tool", tool), ("scipy", naive_scipy),
-                       ("sitk", simpleitk)):
-        rows[name], results[name] = timed(func, path, repeats if name != "scipy" else 1)
+    rows, results = timed({"floor": (floor, repeats), "tool": (tool, repeats),
+                           "scipy": (naive_scipy, 1), "sitk": (simpleitk, repeats)}, path, repeats)
     agree = results["tool"] == results["scipy"] == results["sitk"]
     base = statistics.median(rows["floor"])
     voxels = int(np.prod(shape))
@@ -150,7 +154,7 @@ def scaling(path, count, distinct=4, rounds=2):
             for index, result in run_tasks(tasks, workers=workers):
                 assert result.ok, result.error
                 stamps.append(time.perf_counter() - t0)
-                tables[workers][index] = result.table
+                tables[workers][index] = result     # compared after the clock stops
             runs[workers].append((count / stamps[-1], (count - 2) / (stamps[-1] - stamps[1])))
             if workers == 2 and cold is None:
                 cold = stamps[-1]
@@ -163,7 +167,7 @@ def scaling(path, count, distinct=4, rounds=2):
     ceiling = _ceiling()
     print(f"  machine ceiling now: 2 processes of a pure-Python loop do {ceiling:.2f}x the work "
           f"of 1; load average after: {_load()}")
-    same = all(tables[1][i].equals(tables[2][i]) for i in range(count))
+    same = all(tables[1][i].table.equals(tables[2][i].table) for i in range(count))
     print(f"  1 and 2 workers give identical tables: {same}")
     if not same:
         raise SystemExit("1 and 2 workers disagree: the scaling figures are not comparable")
@@ -206,7 +210,7 @@ def _ceiling(n=3_000_000, repeats=3):
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--repeats", type=int, default=15)
     parser.add_argument("--scaling-masks", type=int, default=1000)
     parser.add_argument("--small-only", action="store_true", help="skip 512x512x300")
     args = parser.parse_args()

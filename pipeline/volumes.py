@@ -263,44 +263,43 @@ def _absent_labels(values: np.ndarray, labels: tuple[int, ...], name: str) -> Ex
                       f"only {shown}", path=name)
 
 
-#: A part of the lesion voxels is labelled as it is (not split further) when its box holds at
-#: most this many voxels, or at most this many per lesion voxel.
+#: A part of the lesion voxels is labelled in a box of its own when the box holds at most this
+#: many voxels, or at most this many per lesion voxel; otherwise as a graph (scattered specks).
 SMALL_BOX_VOXELS = 1 << 16
 DENSE_BOX_RATIO = 16
+#: Edge (voxels) of the coarse cells that split the lesion voxels into parts.
+CELL = 8
 
 
 def _parts(coords: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-    """Split voxel indices at empty planes into parts no component crosses: (indices into
-    ``coords``, box low corner, box shape) per part.
+    """Split voxel indices into parts no component crosses: (indices into ``coords``, box low
+    corner, box shape) per part.
+
+    The parts are the connected groups (26-connectivity) of occupied ``CELL``-voxel cells: two
+    neighbouring voxels lie in the same or in neighbouring cells, so a component never spans
+    two parts. Labelling the small grid of cells costs little, and each part's box is tight.
 
     >>> c = np.array([[0, 0, 0], [0, 0, 1], [300, 300, 0]])
     >>> [p[0].tolist() for p in sorted(_parts(c), key=lambda p: p[0][0])]
     [[0, 1], [2]]
     """
-    out, stack = [], [np.arange(len(coords))] if len(coords) else []
-    while stack:
-        index = stack.pop()
-        sub = coords[index]
-        low = sub.min(axis=0)
-        shape = sub.max(axis=0) - low + 1
-        size = int(np.prod(shape))
-        if size <= max(SMALL_BOX_VOXELS, DENSE_BOX_RATIO * len(index)):
-            out.append((index, low, shape))
-            continue
-        for axis in np.argsort(-shape, kind="stable"):
-            plane = sub[:, axis] - low[axis]
-            used = np.bincount(plane, minlength=int(shape[axis])) > 0
-            if used.all():
-                continue
-            starts = used & ~np.r_[False, used[:-1]]
-            run = (np.cumsum(starts) - 1)[plane]
-            run = run.astype(np.uint16 if starts.sum() < 1 << 16 else np.int64)
-            order = np.argsort(run, kind="stable")
-            stack.extend(np.split(index[order], np.cumsum(np.bincount(run))[:-1]))
-            break
-        else:
-            out.append((index, low, shape))
-    return out
+    if not len(coords):
+        return []
+    cells = coords >> int(np.log2(CELL)) if CELL & (CELL - 1) == 0 else coords // CELL
+    grid_shape = tuple(int(v) for v in cells.max(axis=0) + 1)
+    cell = np.ravel_multi_index(tuple(cells.T), grid_shape)
+    grid = np.zeros(grid_shape, dtype=np.uint8)
+    grid.reshape(-1)[cell] = 1
+    labelled, count = _connected(grid, 26)
+    part = labelled.reshape(-1)[cell]
+    order = np.argsort(part.astype(np.uint16) if count < 1 << 16 else part, kind="stable")
+    sizes = np.bincount(part, minlength=count + 1)[1:]
+    starts = np.r_[0, np.cumsum(sizes)[:-1]]
+    ordered = coords[order]
+    low = np.minimum.reduceat(ordered, starts)
+    high = np.maximum.reduceat(ordered, starts)
+    return [(order[start:start + size], low[i], high[i] - low[i] + 1)
+            for i, (start, size) in enumerate(zip(starts.tolist(), sizes.tolist()))]
 
 
 def _number_parts(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
@@ -316,11 +315,12 @@ def _number_parts(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, in
         if int(np.prod(shape)) > max(SMALL_BOX_VOXELS, DENSE_BOX_RATIO * len(index)):
             raw, count = _graph_components(local, connectivity)
         else:
-            at = tuple(local.T)
-            box = np.zeros(tuple(int(s) for s in shape), dtype=np.uint8)
-            box[at] = 1
+            shape = tuple(int(s) for s in shape)
+            flat = (local[:, 0] * shape[1] + local[:, 1]) * shape[2] + local[:, 2]
+            box = np.zeros(shape, dtype=np.uint8)
+            box.reshape(-1)[flat] = 1
             labelled, count = _connected(box, connectivity)
-            raw = labelled[at]
+            raw = labelled.reshape(-1)[flat]
         ids[index] = raw.astype(np.int64) + total
         total += count
     return ids, total
