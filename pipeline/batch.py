@@ -194,7 +194,8 @@ Task = tuple[Callable[..., ScanResult], tuple[Any, ...]]
 Numbered = Iterator[tuple[int, Task]]
 
 CONNECT_TIMEOUT_S = 20.0   # seconds --scheduler waits for the Dask scheduler to answer
-PER_WORKER_IN_FLIGHT = 4   # default bound on pending tasks, per worker process or Dask thread
+PER_WORKER_IN_FLIGHT = 16  # default bound on pending tasks, per worker process or Dask thread
+MAX_CHUNK = 8              # tasks per message to a pool worker (two chunks per worker in flight)
 
 
 def run_tasks(tasks: Iterable[Task], *, workers: int = 1, scheduler: str | None = None,
@@ -203,7 +204,7 @@ def run_tasks(tasks: Iterable[Task], *, workers: int = 1, scheduler: str | None 
 
     ``workers`` 1 runs in this process, N > 1 in a process pool (0 = all cores); ``scheduler``
     sends the tasks to an existing Dask distributed cluster instead. ``tasks`` is consumed lazily
-    and at most ``in_flight`` tasks (default 4 per worker) are pending at any time, so memory
+    and at most ``in_flight`` tasks (default 16 per worker) are pending at any time, so memory
     stays flat however many scans there are. Results come in completion order; the index says
     which task each belongs to. A task that raises gives a failed ``ScanResult`` (args must
     start with subject, session, mask path) and the others go on. If a pool worker dies (a crash
@@ -334,65 +335,82 @@ def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
     return result.compact() if isinstance(result, ScanResult) else result
 
 
+def _packed_chunk(tasks: list[Task]) -> list[ScanResult]:
+    """Run several tasks in one worker call (one message each way instead of one per scan)."""
+    return [_packed_call(func, *args) for func, args in tasks]
+
+
 class _PoolRun:
     """State of one process-pool run that outlives a broken pool.
 
-    Tasks in flight when a worker dies are suspects: each is retried once, alone, in a fresh
-    pool, so an innocent scan that happened to share the pool succeeds and only a scan that
-    kills its worker twice fails. Suspects run one at a time before normal work resumes.
+    Tasks go to the pool in chunks of up to ``chunk`` (fewer messages, so the parent process
+    takes less of the cores the workers need). Tasks in flight when a worker dies are suspects:
+    each is retried once, alone, in a fresh pool, so an innocent scan that happened to share the
+    pool succeeds and only a scan that kills its worker twice fails. Suspects run one at a time
+    before normal work resumes.
     """
 
-    def __init__(self, numbered: Iterable[tuple[int, Task]], limit: int) -> None:
+    def __init__(self, numbered: Iterable[tuple[int, Task]], limit: int, chunk: int) -> None:
         self.numbered = iter(numbered)
         self.limit = limit
+        self.chunk = chunk
         self.tasks: dict[int, Task] = {}       # pulled and not yet answered
         self.crashes: dict[int, int] = {}      # index -> pools it was in flight in when they broke
         self.suspects: deque[int] = deque()    # to retry alone
         self.unsent: deque[int] = deque()      # pulled but refused by a pool that just broke
 
-    def fill(self, pool: ProcessPoolExecutor, running: dict[Future, int]) -> bool:
+    def fill(self, pool: ProcessPoolExecutor, running: dict[Future, list[int]]) -> bool:
         """Submit up to the bound; False if the pool turned out to be broken."""
         while True:
             if self.suspects:
                 if running:
                     return True
-                index = self.suspects.popleft()
-            elif len(running) >= self.limit:
-                return True
-            elif self.unsent:
-                index = self.unsent.popleft()
+                batch = [self.suspects.popleft()]
             else:
-                item = next(self.numbered, None)
-                if item is None:
+                room = min(self.chunk, self.limit - sum(len(b) for b in running.values()))
+                batch = []
+                while len(batch) < room:
+                    if self.unsent:
+                        batch.append(self.unsent.popleft())
+                        continue
+                    item = next(self.numbered, None)
+                    if item is None:
+                        break
+                    index, task = item
+                    self.tasks[index] = task
+                    batch.append(index)
+                if not batch:
                     return True
-                index, task = item
-                self.tasks[index] = task
-            if not _submit_to_pool(pool, running, index, self.tasks[index]):
-                (self.suspects if self.crashes.get(index) else self.unsent).appendleft(index)
+            if not _submit_to_pool(pool, running, batch, [self.tasks[i] for i in batch]):
+                for index in reversed(batch):
+                    (self.suspects if self.crashes.get(index) else self.unsent).appendleft(index)
                 return False
 
-    def settle(self, future: Future, index: int) -> ScanResult | None:
-        """The result of a finished future, or None if its worker died (then it is retried)."""
+    def settle(self, future: Future, batch: list[int]) -> list[tuple[int, ScanResult]]:
+        """The results of a finished chunk; none for the tasks whose worker died (they are
+        retried)."""
         exc = future.exception()
         if exc is None:
-            result = future.result()   # kept sparse: the parent densifies only when needed
+            answers = list(zip(batch, future.result()))   # kept sparse: densified when needed
         elif not isinstance(exc, BrokenProcessPool):
-            result = _raised(self.tasks[index], exc)
+            answers = [(index, _raised(self.tasks[index], exc)) for index in batch]
         else:
-            self.crashes[index] = self.crashes.get(index, 0) + 1
-            if self.crashes[index] < 2:
-                self.suspects.append(index)
-                return None
-            result = _crashed(self.tasks[index])
-        del self.tasks[index]
-        return result
+            answers = []
+            for index in batch:
+                self.crashes[index] = self.crashes.get(index, 0) + 1
+                if self.crashes[index] < 2:
+                    self.suspects.append(index)
+                else:
+                    answers.append((index, _crashed(self.tasks[index])))
+        for index, _ in answers:
+            del self.tasks[index]
+        return answers
 
 
-def _submit_to_pool(pool: ProcessPoolExecutor, running: dict[Future, int], index: int,
-                    task: Task) -> bool:
-    func, args = task
+def _submit_to_pool(pool: ProcessPoolExecutor, running: dict[Future, list[int]],
+                    batch: list[int], tasks: list[Task]) -> bool:
     try:
-        running[pool.submit(_packed_call, func, *args)] = index
+        running[pool.submit(_packed_chunk, tasks)] = batch
     except BrokenProcessPool:
         return False
     return True
@@ -402,7 +420,7 @@ def _run_pool(numbered: Iterable[tuple[int, Task]], workers: int, limit: int
               ) -> Iterator[tuple[int, ScanResult]]:
     """A process pool, at most ``limit`` tasks pending; restarted if a worker dies."""
     context = _pool_context()
-    state = _PoolRun(numbered, limit)
+    state = _PoolRun(numbered, limit, max(1, min(MAX_CHUNK, limit // (2 * workers))))
     while True:
         pool = ProcessPoolExecutor(workers, mp_context=context, initializer=_init_worker)
         try:
@@ -432,7 +450,7 @@ def _kill_leftover_workers(pool: ProcessPoolExecutor) -> None:
 def _drain(pool: ProcessPoolExecutor, state: _PoolRun
            ) -> Generator[tuple[int, ScanResult], None, bool]:
     """Keep ``pool`` busy until the work is done (returns False) or the pool breaks (True)."""
-    running: dict[Future, int] = {}
+    running: dict[Future, list[int]] = {}
     while True:
         intact = state.fill(pool, running)
         if not running:
@@ -442,10 +460,7 @@ def _drain(pool: ProcessPoolExecutor, state: _PoolRun
             done, _ = wait(running)   # a broken pool fails every pending future promptly
             intact = False
         for future in done:
-            index = running.pop(future)
-            result = state.settle(future, index)
-            if result is not None:
-                yield index, result
+            yield from state.settle(future, running.pop(future))
         if not intact:
             return True
 

@@ -82,13 +82,13 @@ def echo_tasks(count, folder=None, delay=0.0):
 def count_pending(monkeypatch, owner, tasks, **options):
     """Run ``tasks`` with ``owner.submit`` wrapped; the peak of submitted-but-not-yet-answered
     tasks, how many tasks had been pulled from the input when the first answer came, and the
-    answers by index."""
+    answers by index. A pool submission may carry a chunk of tasks; each counts."""
     seen = {"sent": 0, "answered": 0, "peak": 0, "pulled": 0}
     original = owner.submit
 
     def counting(self, *args, **kwargs):
         future = original(self, *args, **kwargs)
-        seen["sent"] += 1
+        seen["sent"] += len(args[1]) if args[0] is batch._packed_chunk else 1
         seen["peak"] = max(seen["peak"], seen["sent"] - seen["answered"])
         return future
 
@@ -326,7 +326,7 @@ def test_workers_zero_means_every_usable_core(monkeypatch):
     if cores == 1:
         assert sizes == []
     else:
-        assert sizes == [(cores, 4 * cores)]
+        assert sizes == [(cores, batch.PER_WORKER_IN_FLIGHT * cores)]
 
 
 def test_stage1_worker_path_does_not_import_pandas(tmp_path):
