@@ -93,6 +93,9 @@ def read_table(path: str | os.PathLike, *,
         raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False,
                           index_col=False)
     raw.columns = [c.strip() for c in raw.columns]
+    repeated = sorted({c for c in raw.columns if list(raw.columns).count(c) > 1})
+    if repeated:   # e.g. two headers that differ only in spaces: which one is meant is unclear
+        raise pd.errors.ParserError(f"column name(s) {repeated} appear more than once")
     text = set(text_columns)
     out = {}
     for name in raw.columns:

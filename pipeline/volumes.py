@@ -573,16 +573,78 @@ def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.nd
     group_start = np.flatnonzero(np.r_[True, ck[1:] != ck[:-1]])
     group_size = np.diff(np.r_[group_start, len(cand)])
     group_comp = cg[group_start]
-    world = cand[:, [p, q]] @ np.asarray(affine, dtype=float)[:3, [p, q]].T
+    columns = np.asarray(affine, dtype=float)[:3, [p, q]]
+    world = cand[:, [p, q]] @ columns.T
+    # Exact diameters first for each component's slice with the largest upper bound, then only
+    # for slices whose bound can beat that: the others cannot hold the component's maximum.
+    bound = _octagon_bounds(cand[:, p], cand[:, q], group_start, columns)
     best = np.zeros(len(group_start))
-    bucket = np.maximum(1, 2 ** np.ceil(np.log2(group_size))).astype(int)
-    for width in np.unique(bucket):
-        chosen = np.flatnonzero(bucket == width)
-        best[chosen] = _group_diameters(world, group_start[chosen], group_size[chosen], width)
+    order = np.lexsort((-bound, group_comp))                 # per component, largest first
+    first = order[np.unique(group_comp[order], return_index=True)[1]]
+    best[first] = _bucketed_diameters(world, group_start[first], group_size[first])
+    reach = np.zeros(count + 1)
+    reach[group_comp[first]] = best[first]
+    rest = np.flatnonzero(bound >= reach[group_comp] * (1 - 1e-12))
+    rest = rest[~np.isin(rest, first)]
+    best[rest] = _bucketed_diameters(world, group_start[rest], group_size[rest])
     diameters = np.zeros(count)
     np.maximum.at(diameters, group_comp - 1, best)
     slices = np.bincount(group_comp - 1, minlength=count)
     return diameters, slices
+
+
+def _bucketed_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """Largest pairwise distance within each group of points, groups batched by size."""
+    best = np.zeros(len(starts))
+    bucket = np.maximum(1, 2 ** np.ceil(np.log2(np.maximum(sizes, 1)))).astype(int)
+    for width in np.unique(bucket):
+        chosen = np.flatnonzero(bucket == width)
+        best[chosen] = _group_diameters(world, starts[chosen], sizes[chosen], width)
+    return best
+
+
+def _octagon_bounds(u: np.ndarray, v: np.ndarray, starts: np.ndarray, columns: np.ndarray
+                    ) -> np.ndarray:
+    """An upper bound of each group's largest in-slice distance (mm), from the extents of its
+    voxel indices along u, v, u + v and u - v: every difference of two points lies in the
+    octagon those extents allow, and the distance is largest at one of its corners (a convex
+    function on a convex polygon). ``columns`` (3, 2) maps (u, v) steps to millimetres.
+
+    >>> d = np.array([[0, 0], [3, 4]])                       # one pair, 5 apart
+    >>> bool(_octagon_bounds(d[:, 0], d[:, 1], np.array([0]), np.eye(3)[:, :2])[0] >= 5.0)
+    True
+    """
+    extents = np.stack([(np.maximum.reduceat(values, starts) -
+                         np.minimum.reduceat(values, starts)).astype(float)
+                        for values in (u, v, u + v, u - v)])                 # (4, groups)
+    to_du, to_dv = _OCTAGON_CORNERS
+    du, dv = to_du @ extents, to_dv @ extents                              # (24, groups)
+    along = _OCTAGON_NORMALS[:, 0, None, None] * du + _OCTAGON_NORMALS[:, 1, None, None] * dv
+    inside = (np.abs(along) <= extents[:, None, :] * (1 + 1e-9) + 1e-9).all(axis=0)
+    gram = columns.T @ columns
+    length = gram[0, 0] * du * du + 2 * gram[0, 1] * du * dv + gram[1, 1] * dv * dv
+    return np.sqrt(np.where(inside, length, 0.0).max(axis=0, initial=0.0))
+
+
+def _octagon_corners() -> tuple[np.ndarray, np.ndarray]:
+    """(24, 4) matrices giving the candidate corners (du, dv) of the octagon from its four
+    extents: each corner lies on two of the lines n . d = +-extent."""
+    to_du, to_dv = [], []
+    for i in range(4):
+        for j in range(i + 1, 4):
+            inverse = np.linalg.inv(_OCTAGON_NORMALS[[i, j]])
+            for si in (1.0, -1.0):
+                for sj in (1.0, -1.0):
+                    rows = np.zeros((2, 4))
+                    rows[:, i] += inverse[:, 0] * si
+                    rows[:, j] += inverse[:, 1] * sj
+                    to_du.append(rows[0])
+                    to_dv.append(rows[1])
+    return np.asarray(to_du), np.asarray(to_dv)
+
+
+_OCTAGON_NORMALS = np.array([[1, 0], [0, 1], [1, 1], [1, -1]], dtype=float)
+_OCTAGON_CORNERS = _octagon_corners()
 
 
 def _group_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray,

@@ -115,6 +115,9 @@ def test_row_problems(tmp_path, capsys):
     ("subject\tsession\tmask\tdate\n", "no rows"),
     ("subject\tmask\tdate\nA\tm.nii\t2024-01-01\n", "lacks column(s) session"),
     ("subject\tsession\tmask\nA\t1\tm.nii\n", "date or day"),
+    # found by tests/test_fuzz.py: two headers that differ only in spaces
+    ("subject\tsession\tmask\tdate\t \t\xa0\nA\t1\tm.nii\t2024-01-01\t\t\n",
+     "more than once"),
 ])
 def test_whole_manifest_problems_exit_2(tmp_path, capsys, content, words):
     (tmp_path / "m.tsv").write_text(content)

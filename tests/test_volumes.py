@@ -278,22 +278,28 @@ def test_components_numbered_largest_first_and_border_flag():
     assert (full[4:7, 4:7, 4:7] == 1).all() and (full[0:2, 0:2, 0:2] == 2).all()
 
 
+def brute_force_axial_diameter(voxels, affine, axis):
+    """Largest pairwise in-slice distance (mm) by scipy.spatial.distance.pdist over all pairs."""
+    from scipy.spatial.distance import pdist
+
+    best = 0.0
+    for k in np.unique(voxels[:, axis]):
+        pts = voxels[voxels[:, axis] == k]
+        if len(pts) > 1:
+            best = max(best, pdist(pts @ affine[:3, :3].T).max())
+    return best
+
+
 def test_table_diameters_and_labels_match_per_component_brute_force():
     # Reference: brute-force largest pairwise in-slice distance (scipy pdist) and the most
     # frequent label (numpy unique) for every component, on an oblique grid.
-    from scipy.spatial.distance import pdist
-
     data = random_blobs(seed=11, count=8)
     affine = oblique_affine()
     table, comps, offset = component_table(data, affine)
     axis = 2
     for row in table.itertuples():
         local = np.argwhere(comps == row.component) + np.asarray(offset)
-        best = 0.0
-        for k in np.unique(local[:, axis]):
-            pts = local[local[:, axis] == k]
-            if len(pts) > 1:
-                best = max(best, pdist(pts @ affine[:3, :3].T).max())
+        best = brute_force_axial_diameter(local, affine, axis)
         assert row.max_axial_diameter_mm == pytest.approx(best, abs=1e-9)
         values, counts = np.unique(data[tuple(local.T)], return_counts=True)
         assert row.label == values[np.argmax(counts)]
@@ -321,3 +327,40 @@ def test_scattered_voxels_labelled_as_a_graph_agree_with_scipy(connectivity, see
     # Same partition: each of our components is exactly one of scipy's, and vice versa.
     pairs = np.unique(np.stack([ours[data > 0], expected[data > 0]]), axis=1)
     assert pairs.shape[1] == count
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_diameters_on_sheared_grids_match_brute_force(seed):
+    # Reference: brute-force largest pairwise in-slice distance (scipy pdist) per component and
+    # slice, on grids whose voxel axes are not perpendicular (sheared affines) and on several
+    # blob sets: the slices skipped by the bound must never hold the maximum.
+    rng = np.random.default_rng(seed)
+    data = random_blobs(seed=100 + seed, count=6)
+    affine = np.eye(4)
+    affine[:3, :3] = np.diag(rng.uniform(0.5, 2.0, 3)) + rng.uniform(-0.6, 0.6, (3, 3)) * \
+        (1 - np.eye(3))
+    table, comps, offset = component_table(data, affine)
+    axis = int(np.argmax(np.abs(affine[2, :3]) / np.linalg.norm(affine[:3, :3], axis=0)))
+    assert len(table) >= 1
+    for row in table.itertuples():
+        local = np.argwhere(comps == row.component) + np.asarray(offset)
+        best = brute_force_axial_diameter(local, affine, axis)
+        assert row.max_axial_diameter_mm == pytest.approx(best, rel=1e-9, abs=1e-9)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_octagon_bound_is_never_below_the_true_largest_distance(seed):
+    # Reference: scipy.spatial.distance.pdist (brute force) on random in-slice point sets.
+    from scipy.spatial.distance import pdist
+
+    from pipeline.volumes import _octagon_bounds
+
+    rng = np.random.default_rng(seed)
+    columns = rng.uniform(-2, 2, (3, 2))
+    sets = [rng.integers(0, rng.integers(1, 30), (rng.integers(1, 40), 2)) for _ in range(50)]
+    points = np.concatenate(sets)
+    starts = np.cumsum([0] + [len(s) for s in sets[:-1]])
+    bounds = _octagon_bounds(points[:, 0], points[:, 1], starts, columns)
+    for bound, group in zip(bounds, sets):
+        true = pdist(group @ columns.T).max() if len(group) > 1 else 0.0
+        assert bound >= true - 1e-9
