@@ -235,14 +235,15 @@ def lesion_voxels(data: np.ndarray, connectivity: int, labels: tuple[int, ...] |
     """Find the lesion voxels of a label mask and number its connected components.
 
     The lesion voxels are found from the array's memory in one fast pass (no boolean copy of the
-    volume); the set is split at empty planes (no component can cross one) and each part is
-    labelled in a box of its own, so the cost follows the lesions, not the image size.
-    Components are numbered largest first, ties by first voxel in raster order.
+    volume); the set is split into parts no component can cross (connected groups of occupied
+    coarse cells) and each part is labelled on its own, so the cost follows the lesions, not
+    the image size. Components are numbered largest first, ties by first voxel in raster order.
     """
     fortran = data.flags.f_contiguous and not data.flags.c_contiguous
     work = data.T if fortran else data
-    where = nonzero_flat(work.reshape(-1))
-    values = work.reshape(-1)[where]
+    flat = work.reshape(-1)
+    where = nonzero_flat(flat)
+    values = flat[where]
     if labels is not None:
         chosen = np.isin(values, np.asarray(labels, dtype=data.dtype))
         if not chosen.any() and len(values):
@@ -306,8 +307,8 @@ def _number_parts(coords: np.ndarray, connectivity: int) -> tuple[np.ndarray, in
     """A component number per voxel (1..count, in no particular order) and the count.
 
     A compact part is labelled in a box of its own; a part whose box would be mostly empty
-    (scattered specks no empty plane separates) is labelled as a graph of neighbouring voxels,
-    so memory follows the lesion voxels, not the image."""
+    (specks scattered close enough to chain their cells together) is labelled as a graph of
+    neighbouring voxels, so memory follows the lesion voxels, not the image."""
     ids = np.zeros(len(coords), dtype=np.int64)
     total = 0
     for index, low, shape in _parts(coords):
