@@ -15,7 +15,7 @@ from pipeline.batch import ScanResult, run_tasks, start_pool_server, volumes_tas
 from pipeline.config import Config
 from pipeline.inputs import Scan, read_inputs
 from pipeline.tables import write_sidecar, write_table
-from pipeline.volumes import LESION_COLUMNS, LabelledScan, scan_table
+from pipeline.volumes import LESION_COLUMNS, LabelledScan
 
 ERROR_COLUMNS = ("subject", "session", "path", "stage", "reason")
 MASK_COLUMNS = ("subject", "session", "day", "mask", "image", "group", "components", "volume_mm3",
@@ -107,22 +107,39 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
 
 
 def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
-    lesion_parts, mask_rows = [], []
+    """lesions.tsv and masks.tsv rows, built column by column from every scan's measures (one
+    DataFrame in the end, not one per scan: a batch of thousands of scans stays quick here)."""
+    import numpy as np
+
+    from pipeline.volumes import MEASURE_COLUMNS
+
+    parts, ident, mask_rows = [], [], []
     for scan in sorted(stage.scans, key=lambda s: (s.subject, s.day, s.session)):
         result = stage.results.get(scan.key)
         if scan.error or result is None or not result.ok:
             continue
-        lesion_parts.append(scan_table(result.table, subject=scan.subject, session=scan.session,
-                                       day=scan.day, mask=scan.mask, group=scan.group))
+        columns = result.columns
+        parts.append(columns)
+        ident.append((scan.subject, scan.session, float(scan.day), scan.mask, scan.group))
         mask_rows.append({"subject": scan.subject, "session": scan.session, "day": scan.day,
                           "mask": scan.mask, "image": scan.image, "group": scan.group,
-                          "components": len(result.table),
-                          "volume_mm3": float(result.table.volume_mm3.sum()),
+                          "components": len(columns["component"]),
+                          "volume_mm3": float(np.sum(columns["volume_mm3"])),
                           "voxel_volume_mm3": float(abs(_det(result.affine))),
                           "shape_x": result.shape[0], "shape_y": result.shape[1],
                           "shape_z": result.shape[2], "sha256": result.sha256})
-    lesions = pd.concat(lesion_parts, ignore_index=True) if lesion_parts else \
-        pd.DataFrame(columns=list(LESION_COLUMNS))
+    if not parts:
+        return pd.DataFrame(columns=list(LESION_COLUMNS)), \
+            pd.DataFrame(mask_rows, columns=list(MASK_COLUMNS))
+    counts = [len(p["component"]) for p in parts]
+    data = {}
+    for position, name in enumerate(("subject", "session", "day", "mask", "group")):
+        values = np.empty(len(ident), dtype=float if name == "day" else object)
+        values[:] = [row[position] for row in ident]
+        data[name] = np.repeat(values, counts)
+    for name in MEASURE_COLUMNS:
+        data[name] = np.concatenate([p[name] for p in parts])
+    lesions = pd.DataFrame(data, columns=list(LESION_COLUMNS))
     return lesions, pd.DataFrame(mask_rows, columns=list(MASK_COLUMNS))
 
 
