@@ -9,8 +9,11 @@ from pathlib import Path
 
 
 @contextmanager
-def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+def atomic_path(path: str | os.PathLike, *, durable: bool = True) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success rename it over ``path`` atomically.
+
+    ``durable`` flushes the data to disk (fsync) before the rename, so a power loss leaves the
+    old file or the new one; a cache entry, which is only ever a miss when torn, skips that.
 
     The temporary name keeps the real suffix (``.nii.gz`` stays last), because nibabel picks
     the file format from the name. On failure the temporary file is removed and ``path`` is left
@@ -26,8 +29,9 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
-        with open(tmp_path, "rb") as handle:
-            os.fsync(handle.fileno())
+        if durable:
+            with open(tmp_path, "rb") as handle:
+                os.fsync(handle.fileno())
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():

@@ -89,6 +89,20 @@ def test_rerun_reuses_finished_scans(finished, capsys):
     assert (folder / "out" / "lesions.tsv").read_bytes() == before
 
 
+def test_torn_cache_entries_are_measured_again(finished, capsys):
+    # Common practice (a cache is never trusted blindly): entries cut short or overwritten, as
+    # a power loss may leave them (they are not fsynced), are misses, not failures.
+    folder, _, _ = finished
+    before = (folder / "out" / "lesions.tsv").read_bytes()
+    entries = sorted((folder / "out" / ".cache" / "volumes").glob("*.npz"))
+    entries[0].write_bytes(entries[0].read_bytes()[:100])
+    entries[1].write_bytes(b"not a cache entry")
+    code = main(["run", str(folder / "in" / "manifest.tsv"), "-o", str(folder / "out"), "-q"])
+    err = capsys.readouterr().err
+    assert code == 1 and "(2 computed, 6 reused" in err
+    assert (folder / "out" / "lesions.tsv").read_bytes() == before
+
+
 def test_subjects_are_never_matched_with_each_other(tmp_path):
     # Identity safety (common practice): two subjects with lesions at the same world positions
     # and on the same days are followed separately; every link stays inside one subject.
