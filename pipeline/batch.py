@@ -263,8 +263,9 @@ def _raised(task: Task, exc: BaseException) -> ScanResult:
 
 
 def _crashed(task: Task) -> ScanResult:
-    return _failed(task, "worker process died while measuring this scan, and again when retried "
-                   "alone (killed by the system, e.g. out of memory, or a crash in a library)")
+    return _failed(task, "worker process died while measuring this scan when retried alone, "
+                   "after its pool broke with it in flight (killed by the system, e.g. out of "
+                   "memory, or a crash in a library)")
 
 
 @dataclass(frozen=True)
@@ -336,18 +337,27 @@ def _packed_call(func: Callable[..., ScanResult], *args: Any) -> ScanResult:
 
 
 def _packed_chunk(tasks: list[Task]) -> list[ScanResult]:
-    """Run several tasks in one worker call (one message each way instead of one per scan)."""
-    return [_packed_call(func, *args) for func, args in tasks]
+    """Run several tasks in one worker call (one message each way instead of one per scan).
+    Whatever one task raises (even SystemExit) stays that task's failure, not its chunk's."""
+    results = []
+    for func, args in tasks:
+        try:
+            results.append(_packed_call(func, *args))
+        except KeyboardInterrupt:
+            raise
+        except BaseException as exc:  # noqa: B036 - one scan's failure, the others go on
+            results.append(_raised((func, args), exc))
+    return results
 
 
 class _PoolRun:
     """State of one process-pool run that outlives a broken pool.
 
     Tasks go to the pool in chunks of up to ``chunk`` (fewer messages, so the parent process
-    takes less of the cores the workers need). Tasks in flight when a worker dies are suspects:
-    each is retried once, alone, in a fresh pool, so an innocent scan that happened to share the
-    pool succeeds and only a scan that kills its worker twice fails. Suspects run one at a time
-    before normal work resumes.
+    takes less of the cores the workers need). Tasks in flight when a worker dies are suspects
+    (which of them was running is not known): each is retried alone in a fresh pool, so an
+    innocent scan succeeds and only a scan that kills its worker while running alone fails.
+    Suspects run one at a time before normal work resumes.
     """
 
     def __init__(self, numbered: Iterable[tuple[int, Task]], limit: int, chunk: int) -> None:
@@ -355,7 +365,7 @@ class _PoolRun:
         self.limit = limit
         self.chunk = chunk
         self.tasks: dict[int, Task] = {}       # pulled and not yet answered
-        self.crashes: dict[int, int] = {}      # index -> pools it was in flight in when they broke
+        self.suspected: set[int] = set()       # in flight once when a pool broke
         self.suspects: deque[int] = deque()    # to retry alone
         self.unsent: deque[int] = deque()      # pulled but refused by a pool that just broke
 
@@ -383,7 +393,7 @@ class _PoolRun:
                     return True
             if not _submit_to_pool(pool, running, batch, [self.tasks[i] for i in batch]):
                 for index in reversed(batch):
-                    (self.suspects if self.crashes.get(index) else self.unsent).appendleft(index)
+                    (self.suspects if index in self.suspected else self.unsent).appendleft(index)
                 return False
 
     def settle(self, future: Future, batch: list[int]) -> list[tuple[int, ScanResult]]:
@@ -394,14 +404,13 @@ class _PoolRun:
             answers = list(zip(batch, future.result()))   # kept sparse: densified when needed
         elif not isinstance(exc, BrokenProcessPool):
             answers = [(index, _raised(self.tasks[index], exc)) for index in batch]
+        elif len(batch) == 1 and batch[0] in self.suspected:   # it ran alone: the culprit
+            answers = [(batch[0], _crashed(self.tasks[batch[0]]))]
         else:
             answers = []
             for index in batch:
-                self.crashes[index] = self.crashes.get(index, 0) + 1
-                if self.crashes[index] < 2:
-                    self.suspects.append(index)
-                else:
-                    answers.append((index, _crashed(self.tasks[index])))
+                self.suspected.add(index)
+                self.suspects.append(index)
         for index, _ in answers:
             del self.tasks[index]
         return answers

@@ -124,17 +124,20 @@ def _decompress_head(raw: bytes, name: str, size: int = 544) -> bytes:
 def _decompress_into(raw: bytes, needed: int, name: str, module=None) -> np.ndarray:
     """Decompress a gzip stream into one array of at most the declared size, in one call (no
     second copy of the data, so peak memory stays near one byte per stored byte; a stream that
-    would decompress to more than the header declares stops there). When the stream ends with
-    the image, its trailer is read too, so the CRC-32 is checked. The array is read-only."""
+    would decompress to more than the header declares keeps only that much). The stream is
+    always decoded to its end, 1 MB at a time past the image, so its CRC-32 and length are
+    checked. The array is read-only."""
     module = module or _inflate()
     stream = module.decompressobj(wbits=31)
     try:
         body, more = stream.decompress(raw, needed), b""
-        if len(body) == needed and not stream.eof:   # read the trailer: the CRC is checked
-            more = stream.decompress(stream.unconsumed_tail, 1)
+        while len(body) == needed and not stream.eof:   # decode to the end: the CRC is checked
+            more = stream.decompress(stream.unconsumed_tail, 1 << 20)   # (the rest is dropped)
+            if not more and not stream.unconsumed_tail:
+                break
     except _gzip_errors(module) as exc:
         raise _gzip_error(exc, name) from None
-    if len(body) == needed and not stream.eof and not more:
+    if len(body) == needed and not stream.eof:
         raise InputError(f"{name}: gzip data is truncated (the stream's end and checksum are "
                          "missing)", path=name)
     if len(body) < needed and not stream.eof:

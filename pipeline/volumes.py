@@ -71,7 +71,7 @@ def select_labels(data: np.ndarray, labels: tuple[int, ...] | None, *, name: str
     """
     if labels is None:
         return data != 0
-    selected = np.isin(data, np.asarray(labels, dtype=data.dtype))
+    selected = np.isin(data, _label_values(labels, data.dtype))
     if not selected.any() and data.any():
         raise _absent_labels(np.asarray(data).ravel(), labels, name)
     return selected
@@ -245,7 +245,7 @@ def lesion_voxels(data: np.ndarray, connectivity: int, labels: tuple[int, ...] |
     where = nonzero_flat(flat)
     values = flat[where]
     if labels is not None:
-        chosen = np.isin(values, np.asarray(labels, dtype=data.dtype))
+        chosen = np.isin(values, _label_values(labels, data.dtype))
         if not chosen.any() and len(values):
             raise _absent_labels(values, labels, name)
         where, values = where[chosen], values[chosen]
@@ -254,6 +254,21 @@ def lesion_voxels(data: np.ndarray, connectivity: int, labels: tuple[int, ...] |
     ids = _largest_first(raw, count)
     voxels = coords[:, ::-1] if fortran else coords
     return LesionVoxels(np.ascontiguousarray(voxels), values, ids, count, fortran)
+
+
+def _label_values(labels: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
+    """The asked-for label values the mask's type can hold (a uint8 mask holds no 300 or -1),
+    in that type.
+
+    >>> _label_values((1, 300, -1), np.dtype(np.uint8)).tolist()
+    [1]
+    """
+    if dtype.kind in "iu":
+        info = np.iinfo(dtype)
+        labels = tuple(v for v in labels if info.min <= v <= info.max)
+    elif dtype.kind == "b":
+        labels = tuple(v for v in labels if v in (0, 1))
+    return np.asarray(labels, dtype=dtype)
 
 
 def _absent_labels(values: np.ndarray, labels: tuple[int, ...], name: str) -> Exception:

@@ -38,3 +38,8 @@ def crash(subject: str, session: str, path: str, delay: float = 0.0,
 def boom(subject: str, session: str, path: str) -> ScanResult:
     """Raise like a bug would (volumes_task itself never raises)."""
     raise RuntimeError(f"bug while measuring {path}")
+
+
+def leave(subject: str, session: str, path: str) -> ScanResult:
+    """Raise SystemExit, as a library calling sys.exit would (not an Exception)."""
+    raise SystemExit(2)

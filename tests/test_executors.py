@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from exec_tasks import boom, crash, echo
+from exec_tasks import boom, crash, echo, leave
 from hypothesis import given
 from hypothesis import strategies as st
 from nifti_helpers import oblique_affine, random_blobs, save_mask
@@ -351,3 +351,15 @@ def test_stage1_worker_path_does_not_import_pandas(tmp_path):
             "print('pandas' in sys.modules)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_task_raising_system_exit_in_a_pool_costs_only_its_scan():
+    # Common practice (fault isolation): pool tasks travel in chunks; one task's SystemExit must
+    # not fail the other scans of its chunk.
+    tasks = echo_tasks(8)
+    tasks[3] = (leave, ("s", "3", "mask3.nii.gz"))
+    answers = dict(run_tasks(tasks, workers=2, in_flight=8))
+    bad = answers.pop(3)
+    assert bad.error.startswith("mask3.nii.gz: task failed (SystemExit: 2)")
+    assert sorted(answers) == [0, 1, 2, 4, 5, 6, 7]
+    assert all(r.ok and r.sha256 == f"mask{i}.nii.gz" for i, r in answers.items())

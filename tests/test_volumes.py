@@ -364,3 +364,17 @@ def test_octagon_bound_is_never_below_the_true_largest_distance(seed):
     for bound, group in zip(bounds, sets):
         true = pdist(group @ columns.T).max() if len(group) > 1 else 0.0
         assert bound >= true - 1e-9
+
+
+def test_label_value_the_mask_type_cannot_hold_is_an_input_error():
+    # Common practice: labels (300,) on a uint8 mask can match nothing; the message names the
+    # values the mask holds, as for any absent label (not an internal error).
+    from pipeline.errors import InputError
+
+    data = np.zeros((4, 4, 4), np.uint8)
+    data[1, 1, 1] = 2
+    with pytest.raises(InputError, match=r"label values \(300, -1\) asked for, but the mask "
+                                         r"holds only \[2\]"):
+        component_table(data, np.eye(4), labels=(300, -1))
+    table, _, _ = component_table(data, np.eye(4), labels=(2, 300))
+    assert table.voxels.tolist() == [1]
