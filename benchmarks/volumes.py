@@ -147,14 +147,14 @@ def scaling(path, count, distinct=4, rounds=2):
     tasks = [(volumes_task, ("b", str(i), str(paths[i % len(paths)]), None, VolumeSettings()))
              for i in range(count)]
     print(f"  load average before: {_load()}")
-    runs, tables, cold = {1: [], 2: []}, {}, None
+    runs, results, cold = {1: [], 2: []}, {}, None
     for _ in range(rounds):
         for workers in (1, 2):
-            t0, stamps, tables[workers] = time.perf_counter(), [], {}
+            t0, stamps, results[workers] = time.perf_counter(), [], {}
             for index, result in run_tasks(tasks, workers=workers):
                 assert result.ok, result.error
                 stamps.append(time.perf_counter() - t0)
-                tables[workers][index] = result     # compared after the clock stops
+                results[workers][index] = result    # compared after the clock stops
             runs[workers].append((count / stamps[-1], (count - 2) / (stamps[-1] - stamps[1])))
             if workers == 2 and cold is None:
                 cold = stamps[-1]
@@ -167,7 +167,7 @@ def scaling(path, count, distinct=4, rounds=2):
     ceiling = _ceiling()
     print(f"  machine ceiling now: 2 processes of a pure-Python loop do {ceiling:.2f}x the work "
           f"of 1; load average after: {_load()}")
-    same = all(tables[1][i].table.equals(tables[2][i].table) for i in range(count))
+    same = all(results[1][i].table.equals(results[2][i].table) for i in range(count))
     print(f"  1 and 2 workers give identical tables: {same}")
     if not same:
         raise SystemExit("1 and 2 workers disagree: the scaling figures are not comparable")

@@ -364,14 +364,19 @@ def _longitudinal(out: Path, subject: str):
     return table[table.subject == subject][["lesion", "session", "volume_mm3"]].values.tolist()
 
 
+def run_with_events(folder: Path, manifest, events: str):
+    """`run` on the two-subject input with ``events`` as its events table: (OUT, status, stderr)."""
+    (folder / "events.tsv").write_text(events)
+    out = folder / "out"
+    code, err = call(["run", manifest, "-o", out, "--events", folder / "events.tsv", "-q"])
+    return out, code, err
+
+
 def test_events_naming_unknown_subject(two_subjects):
     # Reference: contract (events table; errors.tsv lists inputs that failed). Row 2 of the events
     # file names subject Z, absent from the input.
-    folder, manifest = two_subjects
-    (folder / "events.tsv").write_text("subject\tdate\tevent\nZ\t2024-01-10\tradiosurgery\n"
-                                       "H\t2024-01-10\tradiosurgery\n")
-    out = folder / "out"
-    code, err = call(["run", manifest, "-o", out, "--events", folder / "events.tsv", "-q"])
+    out, code, err = run_with_events(*two_subjects, "subject\tdate\tevent\n"
+                                     "Z\t2024-01-10\tradiosurgery\nH\t2024-01-10\tradiosurgery\n")
     assert code == 1
     row = errors_of(out).query("subject == 'Z'")
     assert len(row) == 1 and row.stage.iloc[0] == "events"
@@ -385,11 +390,8 @@ def test_events_naming_unknown_subject(two_subjects):
 def test_events_naming_unknown_lesion(two_subjects):
     # Reference: issue 7 list ("an events ... file that names unknown subjects or lesions") and
     # the contract (events `lesion` names one lesion track).
-    folder, manifest = two_subjects
-    (folder / "events.tsv").write_text("subject\tdate\tevent\tlesion\n"
-                                       "H\t2024-01-10\tradiosurgery\t99\n")
-    out = folder / "out"
-    code, err = call(["run", manifest, "-o", out, "--events", folder / "events.tsv", "-q"])
+    out, code, err = run_with_events(*two_subjects, "subject\tdate\tevent\tlesion\n"
+                                     "H\t2024-01-10\tradiosurgery\t99\n")
     assert code == 1
     row = errors_of(out).query("subject == 'H'")
     assert len(row) == 1 and "99" in row.reason.iloc[0] and "row 2" in row.reason.iloc[0]
