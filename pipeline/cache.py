@@ -17,7 +17,11 @@ from pipeline.files import atomic_path
 
 def cache_key(sha256: str, settings_digest: str, labels: tuple[int, ...] | None) -> str:
     """File name stem for one scan's cached result."""
-    extra = hashlib.sha256(f"{settings_digest}|{labels}".encode()).hexdigest()[:16]
+    from pipeline.volumes import MEASURE_COLUMNS
+
+    # the measured columns belong to the key: a release that adds one never reuses old entries
+    extra = hashlib.sha256(f"{settings_digest}|{labels}|{MEASURE_COLUMNS}".encode()
+                           ).hexdigest()[:16]
     return f"{sha256[:32]}-{extra}"
 
 

@@ -31,8 +31,15 @@ LESION_SIDECAR = {
     "touches_border": {"Description": "The lesion touches the edge of the image grid",
                        "Levels": {"true": "touches", "false": "does not touch"}},
     "measurable": {"Description": "RANO-BM measurable: longest diameter >= 10 mm and visible on "
-                                  ">= 2 axial slices (Lin NU et al. Lancet Oncol 2015)",
+                                  ">= 2 axial slices (Lin NU et al. Lancet Oncol 2015), the "
+                                  "diameter taken edge to edge (max_axial_diameter_edge_mm), "
+                                  "as a reader measures it on screen",
                    "Levels": {"true": "measurable", "false": "not measurable"}},
+    "max_axial_diameter_edge_mm": {
+        "Description": "max_axial_diameter_mm measured edge to edge: the centre-to-centre "
+                       "distance plus one voxel's in-slice extent along the measured line "
+                       "(common practice); a lesion 10 voxels wide at 1 mm reads 10 mm here and "
+                       "9 mm centre to centre", "Units": "mm"},
     "mask": {"Description": "Mask path as given in the input"},
     "group": {"Description": "Group from the manifest ('' = none; fitted as 'all')"},
 }

@@ -48,9 +48,9 @@ LESION_COLUMNS = ("subject", "session", "day", "component", "label", "voxels", "
                   "centroid_x_mm", "centroid_y_mm", "centroid_z_mm", "max_axial_diameter_mm",
                   "equivalent_diameter_mm", "bbox_i_min", "bbox_i_max", "bbox_j_min",
                   "bbox_j_max", "bbox_k_min", "bbox_k_max", "axial_slices", "touches_border",
-                  "measurable", "mask", "group")
+                  "measurable", "max_axial_diameter_edge_mm", "mask", "group")
 
-MEASURE_COLUMNS = LESION_COLUMNS[3:21]
+MEASURE_COLUMNS = LESION_COLUMNS[3:22]
 
 
 def select_labels(data: np.ndarray, labels: tuple[int, ...] | None, *, name: str = "mask"
@@ -110,8 +110,25 @@ def max_axial_diameter(voxels: np.ndarray, affine: np.ndarray, axis: int) -> tup
     (5.0, 2)
     """
     ids = np.ones(len(voxels), dtype=np.int64)
-    diameters, slices = _axial_diameters(np.asarray(voxels), ids, 1, affine, axis)
+    diameters, _edges, slices = _axial_diameters(np.asarray(voxels), ids, 1, affine, axis)
     return float(diameters[0]), int(slices[0])
+
+
+def max_axial_diameter_edge(voxels: np.ndarray, affine: np.ndarray, axis: int) -> float:
+    """Edge-to-edge longest axial diameter (mm) of one lesion's (n, 3) voxel indices: the
+    centre-to-centre diameter plus the extent of one voxel along the measured direction.
+
+    A reader measuring on screen spans the lesion from edge to edge; adding one voxel's width
+    along the measured line to the centre distance is common practice (docs/methods.md).
+
+    >>> max_axial_diameter_edge(np.array([[0, 0, 0], [9, 0, 0]]), np.eye(4), 2)
+    10.0
+    >>> round(max_axial_diameter_edge(np.array([[0, 0, 0], [3, 3, 0]]), np.eye(4), 2), 4)
+    5.6569
+    """
+    ids = np.ones(len(voxels), dtype=np.int64)
+    _diameters, edges, _slices = _axial_diameters(np.asarray(voxels), ids, 1, affine, axis)
+    return float(edges[0])
 
 
 def _connected(crop: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
@@ -420,7 +437,8 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
         One row per component with the columns ``MEASURE_COLUMNS``: ``component``, ``label``
         (the most frequent selected value), ``voxels``, ``volume_mm3`` (voxels x |det A|),
         world centroid, ``max_axial_diameter_mm``, ``equivalent_diameter_mm`` (sphere of equal
-        volume), voxel bounding box, ``axial_slices``, ``touches_border``, ``measurable``.
+        volume), voxel bounding box, ``axial_slices``, ``touches_border``, ``measurable``
+        (judged on ``max_axial_diameter_edge_mm``, the edge-to-edge diameter).
     components, offset
         The component image over the lesion bounding box (0 background, c = component c)
         and the voxel index of the box's first voxel.
@@ -505,8 +523,8 @@ def _measure(found: LesionVoxels, shape: tuple[int, ...], affine: np.ndarray, vo
         labels = np.zeros(0, np.int64)
     centres = centres @ affine[:3, :3].T + affine[:3, 3]
     axis = axial_axis(affine)
-    diameters, slices = _axial_diameters(vox, ids, count, affine, axis,
-                                         _row_axes(axis, found.fortran))
+    diameters, edges, slices = _axial_diameters(vox, ids, count, affine, axis,
+                                                _row_axes(axis, found.fortran))
     volume = sizes.astype(np.int64) * voxel_mm3
     edge = np.asarray(shape[:3]) - 1
     columns = {
@@ -520,7 +538,8 @@ def _measure(found: LesionVoxels, shape: tuple[int, ...], affine: np.ndarray, vo
         "bbox_k_min": low[:, 2].astype(np.int64), "bbox_k_max": high[:, 2].astype(np.int64),
         "axial_slices": slices.astype(np.int64),
         "touches_border": (low == 0).any(axis=1) | (high == edge).any(axis=1),
-        "measurable": (diameters >= min_diameter) & (slices >= min_slices)}
+        "measurable": (edges >= min_diameter) & (slices >= min_slices),
+        "max_axial_diameter_edge_mm": edges}
     return {name: columns[name] for name in MEASURE_COLUMNS}
 
 
@@ -557,8 +576,10 @@ def _mode_per_group(ids: np.ndarray, values: np.ndarray, count: int) -> np.ndarr
 
 def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.ndarray,
                      axis: int, rows: tuple[int, int] | None = None
-                     ) -> tuple[np.ndarray, np.ndarray]:
-    """Longest in-slice distance (mm) and number of axial slices, per component 1..count.
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Longest in-slice distance (mm) between voxel centres, the same edge to edge (plus one
+    voxel's extent along the measured direction) and number of axial slices, per component
+    1..count.
 
     Same rule as :func:`max_axial_diameter` (row-end voxels are the only hull candidates: a
     voxel between two others of its row cannot be a vertex of the hull, whichever in-slice
@@ -567,7 +588,7 @@ def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.nd
     the in-slice axes, rows along q; voxels already sorted that way are not sorted again.
     """
     if count == 0:
-        return np.zeros(0), np.zeros(0, dtype=np.int64)
+        return np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64)
     p, q = rows or [a for a in range(3) if a != axis]
     span = vox.max(axis=0).astype(np.int64) + 1
     slice_key = ids * span[axis] + vox[:, axis]                  # (component, slice)
@@ -594,29 +615,46 @@ def _axial_diameters(vox: np.ndarray, ids: np.ndarray, count: int, affine: np.nd
     # Exact diameters first for each component's slice with the largest upper bound, then only
     # for slices whose bound can beat that: the others cannot hold the component's maximum.
     bound = _octagon_bounds(cand[:, p], cand[:, q], group_start, columns)
-    best = np.zeros(len(group_start))
+    best, along = np.zeros(len(group_start)), np.zeros((len(group_start), 3))
     order = np.lexsort((-bound, group_comp))                 # per component, largest first
     first = order[np.unique(group_comp[order], return_index=True)[1]]
-    best[first] = _bucketed_diameters(world, group_start[first], group_size[first])
+    best[first], along[first] = _bucketed_diameters(world, group_start[first], group_size[first])
     reach = np.zeros(count + 1)
     reach[group_comp[first]] = best[first]
     rest = np.flatnonzero(bound >= reach[group_comp] * (1 - 1e-12))
     rest = rest[~np.isin(rest, first)]
-    best[rest] = _bucketed_diameters(world, group_start[rest], group_size[rest])
+    best[rest], along[rest] = _bucketed_diameters(world, group_start[rest], group_size[rest])
+    # each component's longest slice (the first such slice on ties)
+    pick_order = np.lexsort((-best, group_comp))
+    top = pick_order[np.unique(group_comp[pick_order], return_index=True)[1]]
     diameters = np.zeros(count)
-    np.maximum.at(diameters, group_comp - 1, best)
+    diameters[group_comp[top] - 1] = best[top]
+    edges = diameters + _voxel_extent(along[top], columns)
     slices = np.bincount(group_comp - 1, minlength=count)
-    return diameters, slices
+    return diameters, edges, slices
 
 
-def _bucketed_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
-    """Largest pairwise distance within each group of points, groups batched by size."""
-    best = np.zeros(len(starts))
+def _voxel_extent(along: np.ndarray, columns: np.ndarray) -> np.ndarray:
+    """Width (mm) of one voxel's in-slice face along each direction ``along`` (k, 3): the sum
+    of the face's edge vectors projected on the unit direction. A zero direction (one voxel
+    in its slice) takes the face's longer edge."""
+    length = np.linalg.norm(along, axis=1)
+    unit = along / np.where(length > 0, length, 1.0)[:, None]
+    extent = np.abs(unit @ columns).sum(axis=1)
+    return np.where(length > 0, extent, np.linalg.norm(columns, axis=0).max())
+
+
+def _bucketed_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Largest pairwise distance within each group of points, and the difference vector of
+    that pair (mm), groups batched by size."""
+    best, along = np.zeros(len(starts)), np.zeros((len(starts), world.shape[1]))
     bucket = np.maximum(1, 2 ** np.ceil(np.log2(np.maximum(sizes, 1)))).astype(int)
     for width in np.unique(bucket):
         chosen = np.flatnonzero(bucket == width)
-        best[chosen] = _group_diameters(world, starts[chosen], sizes[chosen], width)
-    return best
+        best[chosen], along[chosen] = _group_diameters(world, starts[chosen], sizes[chosen],
+                                                       width)
+    return best, along
 
 
 def _octagon_bounds(u: np.ndarray, v: np.ndarray, starts: np.ndarray, columns: np.ndarray
@@ -664,8 +702,9 @@ _OCTAGON_CORNERS = _octagon_corners()
 
 
 def _group_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
-                     width: int) -> np.ndarray:
-    """Largest pairwise distance within each group of points (rows starts[i]..+sizes[i])."""
+                     width: int) -> tuple[np.ndarray, np.ndarray]:
+    """Largest pairwise distance within each group of points (rows starts[i]..+sizes[i]) and
+    the difference vector of the farthest pair."""
     padded = np.zeros((len(starts), width, world.shape[1]))
     valid = np.zeros((len(starts), width), dtype=bool)
     rows = np.repeat(np.arange(len(starts)), sizes)
@@ -677,7 +716,11 @@ def _group_diameters(world: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
     norms = (padded * padded).sum(axis=-1)
     squared = norms[:, :, None] + norms[:, None, :] - 2.0 * (padded @ padded.transpose(0, 2, 1))
     squared[~(valid[:, :, None] & valid[:, None, :])] = 0.0
-    return np.sqrt(np.maximum(squared.reshape(len(starts), -1).max(axis=1), 0.0))
+    flat = squared.reshape(len(starts), -1)
+    where = flat.argmax(axis=1)
+    groups = np.arange(len(starts))
+    along = padded[groups, where // width] - padded[groups, where % width]
+    return np.sqrt(np.maximum(flat[groups, where], 0.0)), along
 
 
 def scan_table(table: pd.DataFrame, *, subject: str, session: str, day: float, mask: str,

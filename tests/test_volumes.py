@@ -15,7 +15,7 @@ from skimage.draw import ellipsoid
 from pipeline.io import load_mask
 from pipeline.itk_io import LPS_TO_RAS, itk_affine_ras
 from pipeline.settings import VolumeSettings
-from pipeline.volumes import component_table, max_axial_diameter
+from pipeline.volumes import component_table, max_axial_diameter, max_axial_diameter_edge
 
 
 def sitk_reference(path, connectivity_full=True):
@@ -197,19 +197,46 @@ def test_nifti2_is_read(tmp_path):
 
 
 @pytest.mark.parametrize("length_voxels,slices,measurable", [
-    (11, 2, True),    # centres 10 mm apart on 2 slices: measurable
-    (10, 2, False),   # 9 mm: below the 10 mm threshold
+    (10, 2, True),    # 10 voxels of 1 mm: 10 mm edge to edge (9 mm centre to centre), 2 slices
+    (9, 2, False),    # 9 mm edge to edge: below the 10 mm threshold
     (11, 1, False),   # one slice only
 ])
 def test_rano_bm_measurability(length_voxels, slices, measurable):
     # Reference: RANO-BM (Lin NU et al. Lancet Oncol 2015;16:e270-e278): measurable lesion =
-    # longest diameter >= 10 mm and visible on >= 2 axial slices.
+    # longest diameter >= 10 mm and visible on >= 2 axial slices. The diameter is read edge to
+    # edge, as on screen: centre distance plus one voxel along the line (common practice).
     data = np.zeros((20, 20, 6), np.uint8)
     data[2:2 + length_voxels, 5, 1:1 + slices] = 1
     table, _, _ = component_table(data, np.eye(4))
     assert table.measurable[0] == measurable
     assert table.max_axial_diameter_mm[0] == pytest.approx(length_voxels - 1)
+    assert table.max_axial_diameter_edge_mm[0] == pytest.approx(length_voxels)
     assert table.axial_slices[0] == slices
+
+
+@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (0.5, 0.8, 3.0)])
+def test_edge_to_edge_diameter_by_hand_and_between_bounds(spacing):
+    # Reference, by hand (common practice): a row of n voxels of width s along x reads n * s
+    # edge to edge; a diagonal of n voxels (sx, sy) reads (n - 1) |(sx, sy)| + (sx^2 + sy^2) /
+    # |(sx, sy)|. Bounds: the centre-to-centre diameter below, the diameter of the union of the
+    # voxels' in-slice faces (largest distance between face corners, scipy pdist) above.
+    from scipy.spatial.distance import pdist
+
+    sx, sy, _sz = spacing
+    affine = np.diag([*spacing, 1.0])
+    row = np.array([[i, 3, 0] for i in range(7)])
+    assert max_axial_diameter_edge(row, affine, 2) == pytest.approx(7 * sx)
+    diagonal = np.array([[i, i, 0] for i in range(5)])
+    step = np.hypot(sx, sy)
+    assert max_axial_diameter_edge(diagonal, affine, 2) == pytest.approx(
+        4 * step + (sx * sx + sy * sy) / step)
+    blob = np.argwhere(random_blobs(count=1, seed=3))
+    blob = blob[blob[:, 2] == np.bincount(blob[:, 2]).argmax()]          # its fullest slice
+    corners = np.concatenate([(blob[:, :2] + offset) * (sx, sy)
+                              for offset in ((-.5, -.5), (-.5, .5), (.5, -.5), (.5, .5))])
+    centre, _ = max_axial_diameter(blob, affine, 2)
+    edge = max_axial_diameter_edge(blob, affine, 2)
+    assert centre < edge <= pdist(corners).max() + 1e-9
 
 
 def test_max_axial_diameter_matches_brute_force_on_oblique_grid():
