@@ -232,9 +232,18 @@ def check_memory(shape: tuple[int, ...] | list[int], itemsize: int, name: str,
     """Refuse, before allocating, an image whose array would exceed ``max_memory_mb``."""
     needed = float(np.prod(shape, dtype=float)) * itemsize / 2**20
     if needed > settings.max_memory_mb:
-        raise InputError(f"{name}: mask would need {needed:,.0f} MB in memory (limit "
-                         f"{settings.max_memory_mb:,.0f} MB, setting volumes.max_memory_mb)",
-                         path=name)
+        raise InputError(f"{name}: mask would need {_megabytes(needed)} MB in memory (limit "
+                         f"{_megabytes(settings.max_memory_mb)} MB, setting "
+                         "volumes.max_memory_mb)", path=name)
+
+
+def _megabytes(value: float) -> str:
+    """Whole megabytes from 10 MB on, three significant digits below (never a bare 0).
+
+    >>> _megabytes(1234.4), _megabytes(0.001), _megabytes(0.00763)
+    ('1,234', '0.001', '0.00763')
+    """
+    return f"{value:,.0f}" if value >= 10 else f"{value:.3g}"
 
 
 def nifti_affine(header: nib.Nifti1Header, *, name: str,
@@ -327,9 +336,9 @@ def integer_labels(data: np.ndarray, slope: float | None, inter: float | None, *
     rounded = np.rint(values)
     bad = np.abs(values - rounded) > 1e-6
     if bad.any():
-        example = float(values[bad].flat[0])
+        example = values[bad].flat[0]        # a numpy scalar: str() is its shortest exact form
         raise InputError(f"{name}: labels must be integers{where}; got {data.dtype} with value "
-                         f"{example:.4g} - is this a probability map? threshold it first",
+                         f"{str(example)} - is this a probability map? threshold it first",
                          path=name)
     info = np.iinfo(np.int32)
     fits_int32 = info.min <= rounded.min(initial=0) and rounded.max(initial=0) <= info.max

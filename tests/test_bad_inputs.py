@@ -206,3 +206,16 @@ def test_both_gzip_decoders_agree_with_the_standard_library(damage):
         expected = "truncated" if isinstance(exc, EOFError) else "corrupt"
     for module in (isal_zlib, zlib):
         assert _decoded_or_reason(raw, needed, module) == expected, (damage, module.__name__)
+
+
+def test_messages_show_the_value_that_was_refused(tmp_path):
+    # A float label 0.99999 is not an integer; the message must show it as stored, not rounded
+    # to "1" (a reader would not see why 1 was refused). A tiny memory limit is shown as set.
+    from pipeline.errors import InputError
+    from pipeline.io import check_memory, integer_labels
+    from pipeline.settings import VolumeSettings
+
+    with pytest.raises(InputError, match=r"with value 0\.99999 "):
+        integer_labels(np.array([0.0, 0.99999], np.float32), None, None, name="m.nii")
+    with pytest.raises(InputError, match=r"would need 0\.00763 MB in memory \(limit 0\.001 MB"):
+        check_memory((20, 20, 20), 1, "m.nii", VolumeSettings(max_memory_mb=0.001))
