@@ -59,7 +59,8 @@ def error_row(scan: Scan, reason: str, stage: str) -> dict:
     resolved path."""
     reason = scan.shown(reason)
     if scan.source and scan.source not in reason and (not scan.mask or scan.mask not in reason):
-        reason = f"{scan.source} ({scan.mask or 'no mask'}): {reason}"
+        shown = "" if scan.source == scan.mask else f" ({scan.mask or 'no mask'})"
+        reason = f"{scan.source}{shown}: {reason}"
     return {"subject": scan.subject, "session": scan.session, "path": scan.mask,
             "stage": stage, "reason": reason}
 
