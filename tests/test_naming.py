@@ -12,6 +12,7 @@ from __future__ import annotations
 import errno
 import os
 import unicodedata
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -113,8 +114,11 @@ def test_labels_once_colliding_now_name_separate_files_holding_their_own_lesion(
     expected = {("A_ses-1", "2"): "sub-Ases1_ses-2", ("A_ses-1", "3"): "sub-Ases1_ses-3",
                 ("A", "1_ses-2"): "sub-A_ses-1ses2", ("A", "1_ses-3"): "sub-A_ses-1ses3",
                 ("G", "2"): "sub-G_ses-2", (LONG_OK, "2"): f"sub-{LONG_OK}_ses-2"}
+    masks = read_table(out / "masks.tsv")
     for (subject, session), stem in expected.items():
         image = np.asarray(nib.load(out / "tracks" / f"{stem}_tracks.nii.gz").dataobj)
+        named_in = masks[(masks.subject == subject) & (masks.session == session)].track_image
+        assert named_in.tolist() == [f"tracks/{stem}_tracks.nii.gz"]
         row = lesions[(lesions.subject == subject) & (lesions.session == session)]
         assert int((image > 0).sum()) == int(row.voxels.sum()) > 0, (subject, session)
     # every refused subject wrote no track image of its own, nor one under a shared name
@@ -174,3 +178,8 @@ def test_bids_folder_names_case_misnamed_files_and_missing_sessions_file(tmp_pat
         assert row.reason.count(row.path) == 1, row.reason       # the path once, not twice
         assert len([x for x in err.splitlines() if row.path in x]) == 1
     assert read_table(out / "longitudinal.tsv").query("subject == 'M'").session.tolist() == ["2"]
+
+
+def test_readme_states_the_label_limit_the_code_applies():
+    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    assert f"longer than {MAX_LABELS_CHARS} characters" in " ".join(readme.split())
