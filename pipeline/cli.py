@@ -13,6 +13,7 @@ import typer
 
 from pipeline import DISCLAIMER, __version__
 from pipeline.errors import ConfigError, InputError, PipelineError, UsageError
+from pipeline.outdir import check_out
 
 EPILOG = f"{DISCLAIMER} lesion-growth {__version__}."
 
@@ -91,6 +92,7 @@ def run(input: Path = InputArg, out: Path = OutOpt, events: Path | None = Events
         desc: str | None = DescOpt, forecast_days: float | None = ForecastOpt,
         quiet: bool = QuietOpt) -> None:
     """Every stage: volumes, matching, fitting, report."""
+    check_out(out)
     _start_pool(workers, scheduler)
     from pipeline.workflow import run_all
 
@@ -106,6 +108,7 @@ def volumes(input: Path = InputArg, out: Path = OutOpt, config: Path | None = Co
             workers: int = WorkersOpt, scheduler: str | None = SchedulerOpt,
             desc: str | None = DescOpt, quiet: bool = QuietOpt) -> None:
     """Stage 1 alone: lesions.tsv (one row per connected lesion component)."""
+    check_out(out)
     _start_pool(workers, scheduler)
     from pipeline.workflow import volumes_only
 
@@ -121,6 +124,7 @@ def match(out: Path = OutArg, corrections: Path | None = CorrectionsOpt,
     """Stage 2 alone: matches.tsv, longitudinal.tsv and tracks/ from lesions.tsv in OUT."""
     from pipeline.workflow import match_only
 
+    check_out(out, earlier_run=True)
     raise typer.Exit(match_only(out, config=_config(config), corrections=corrections))
 
 
@@ -131,6 +135,7 @@ def fit(out: Path = OutArg, events: Path | None = EventsOpt,
     """Stage 3 alone: fits.tsv and group_fits.tsv from longitudinal.tsv in OUT."""
     from pipeline.workflow import fit_only
 
+    check_out(out, earlier_run=True)
     raise typer.Exit(fit_only(out, config=_config(config, None, forecast_days), events=events))
 
 
@@ -140,6 +145,7 @@ def report(out: Path = OutArg, config: Path | None = ConfigOpt) -> None:
     """report.html from what is in OUT."""
     from pipeline.workflow import report_only
 
+    check_out(out, earlier_run=True)
     raise typer.Exit(report_only(out, config=_config(config)))
 
 
@@ -157,6 +163,7 @@ def evaluate(out: Path = OutArg,
     """How well a fitted figure separates two outcomes: evaluation.tsv."""
     from pipeline.workflow import evaluate_only
 
+    check_out(out, earlier_run=True)
     raise typer.Exit(evaluate_only(out, outcomes, figures=tuple(figure), phase=phase,
                                    model=model, positive=positive))
 
@@ -178,6 +185,7 @@ def demo(out: Path = typer.Argument(..., help="Folder for the demo inputs and ou
          subjects: int = typer.Option(12, "--subjects", min=1, max=99,
                                       help="Number of invented patients.")) -> None:
     """Make the invented demo cohort under OUT/inputs and run every stage on it."""
+    check_out(out)
     _start_pool(workers, None)
     from pipeline.workflow import run_demo
 

@@ -204,7 +204,8 @@ def finish_scans(scans: list[Scan]) -> list[Scan]:
             when.append(parse_when(scan.extra.get("when", ""), scan.extra.get("kind", "date")))
         except ValueError as exc:
             when.append(float("nan"))
-            scans[i] = _refuse(scan, str(exc))
+            if not (scan.error and not scan.extra.get("when")):  # an empty date: said already
+                scans[i] = _refuse(scan, str(exc))
     first = subject_origins(scans)
     out = [replace(s, day=round(v - first[s.subject], 6)) if np.isfinite(v) else s
            for s, v in zip(scans, when)]
@@ -212,7 +213,21 @@ def finish_scans(scans: list[Scan]) -> list[Scan]:
     duplicated = keys.duplicated(keep=False).to_numpy()
     out = [_refuse(s, f"session {s.session} of subject {s.subject} is listed more than once; "
                    "every row of it is refused") if dup else s for s, dup in zip(out, duplicated)]
-    return _refuse_shared_days(out)
+    return _refuse_unnameable(_refuse_shared_days(out))
+
+
+def _refuse_unnameable(scans: list[Scan]) -> list[Scan]:
+    """Refuse rows whose labels cannot name files, or would name another row's files."""
+    from pipeline.naming import colliding, label_problems
+
+    clashes = colliding([s.key for s in scans])
+    for i, scan in enumerate(scans):
+        problems = label_problems(scan.subject, scan.session)
+        if i in clashes:
+            problems.append(clashes[i])
+        if problems:
+            scans[i] = _refuse(scan, "; ".join(problems))
+    return scans
 
 
 def _refuse_shared_days(scans: list[Scan]) -> list[Scan]:
@@ -266,11 +281,11 @@ def _bids_subject(root: Path, subject_dir: Path, desc: str) -> list[Scan]:
     by_session: dict[str, list[Path]] = {}
     for mask in masks:
         if mask.name.endswith((".nii", ".nii.gz")):
-            by_session.setdefault(bids_entities(mask.name).get("ses", ""), []).append(mask)
-    dates = _bids_dates(subject_dir, subject)
+            by_session.setdefault(_bids_session(mask, subject_dir), []).append(mask)
+    dates, missing = _bids_dates(subject_dir, subject)
     scans = []
     for session, files in sorted(by_session.items()):
-        chosen, problem = _choose_mask(files, desc)
+        chosen, problem = _choose_mask(files, desc, subject, session)
         rel = chosen.relative_to(root).as_posix()
         when = dates.get(session)
         scan = Scan(subject=subject, session=session, mask=rel, mask_path=chosen,
@@ -278,28 +293,57 @@ def _bids_subject(root: Path, subject_dir: Path, desc: str) -> list[Scan]:
         if not session:
             problem = problem or "mask has no ses-<label>; sessions are needed to follow lesions"
         elif when is None:
-            problem = problem or (f"no acq_time for ses-{session} in sub-{subject}/sub-{subject}"
+            problem = problem or (f"{missing}; cannot date the session" if missing else
+                                  f"no acq_time for ses-{session} in sub-{subject}/sub-{subject}"
                                   "_sessions.tsv; cannot date the session")
         scans.append(_refuse(scan, problem) if problem else scan)
     return scans
 
 
-def _choose_mask(files: list[Path], desc: str) -> tuple[Path, str]:
-    if len(files) == 1:
-        return files[0], ""
-    wanted = [f for f in files if bids_entities(f.name).get("desc") == desc]
+def _bids_session(mask: Path, subject_dir: Path) -> str:
+    """The session a mask belongs to: its ``ses-<label>`` folder, else its file name's entity."""
+    folder = mask.parent.parent
+    if folder != subject_dir and folder.name.startswith("ses-"):
+        return folder.name[4:]
+    return bids_entities(mask.name).get("ses", "")
+
+
+def _misnamed(mask: Path, subject: str, session: str) -> str:
+    """Why a mask's file name disagrees with the folders it lies in (BIDS: entities in a file name
+    repeat its sub-/ses- folders), or ''."""
+    entities = bids_entities(mask.name)
+    in_session = mask.parent.parent.name.startswith("ses-")
+    if entities.get("sub") != subject or (in_session and entities.get("ses") != session):
+        folders = f"sub-{subject}/" + (f"ses-{session}/" if in_session else "")
+        return f"{mask.name} is misnamed: it lies in {folders} but its name does not start " \
+            f"with sub-{subject}" + (f"_ses-{session}" if in_session else "")
+    return ""
+
+
+def _choose_mask(files: list[Path], desc: str, subject: str = "",
+                 session: str = "") -> tuple[Path, str]:
+    named = [f for f in files if not _misnamed(f, subject, session)] if subject else files
+    if not named:
+        return files[0], "; ".join(_misnamed(f, subject, session) for f in files)
+    if len(named) == 1:
+        return named[0], ""
+    wanted = [f for f in named if bids_entities(f.name).get("desc") == desc]
     if len(wanted) == 1:
         return wanted[0], ""
-    names = ", ".join(f.name for f in files)
-    return files[0], (f"several masks and {len(wanted)} with desc-{desc}: {names}; choose one "
+    names = ", ".join(f.name for f in named)
+    return named[0], (f"several masks and {len(wanted)} with desc-{desc}: {names}; choose one "
                       "with --desc")
 
 
-def _bids_dates(subject_dir: Path, subject: str) -> dict[str, str]:
+def _bids_dates(subject_dir: Path, subject: str) -> tuple[dict[str, str], str]:
+    """Session dates of ``sub-<s>_sessions.tsv``, and why there are none when the file is
+    missing or lacks its columns."""
+    name = f"sub-{subject}/sub-{subject}_sessions.tsv"
     path = subject_dir / f"sub-{subject}_sessions.tsv"
     if not path.exists():
-        return {}
+        return {}, f"{name} not found"
     table = read_table(path, text_columns=("session_id", "acq_time"))
     if "session_id" not in table.columns or "acq_time" not in table.columns:
-        return {}
-    return {str(s).removeprefix("ses-"): t for s, t in zip(table.session_id, table.acq_time)}
+        return {}, f"{name} lacks the columns session_id and acq_time"
+    return {str(s).removeprefix("ses-"): t
+            for s, t in zip(table.session_id, table.acq_time)}, ""

@@ -370,24 +370,6 @@ def label_dtype(max_value: int) -> np.dtype:
     return np.dtype(np.int32)
 
 
-def bids_name(prefix: str, value: str) -> str:
-    """``sub-01`` from ``01`` or ``sub-01``: never double a prefix.
-
-    >>> bids_name("sub", "01"), bids_name("sub", "sub-01")
-    ('sub-01', 'sub-01')
-    """
-    return value if value.startswith(f"{prefix}-") else f"{prefix}-{value}"
-
-
-def track_path(out: Path, subject: str, session: str) -> Path:
-    """``OUT/tracks/sub-<s>_ses-<t>_tracks.nii.gz``, the one naming rule of track images.
-
-    >>> track_path(Path("out"), "sub-01", "1").as_posix()
-    'out/tracks/sub-01_ses-1_tracks.nii.gz'
-    """
-    return out / "tracks" / f"{bids_name('sub', subject)}_{bids_name('ses', session)}_tracks.nii.gz"
-
-
 def save_label_image(path: str | Path, labels: np.ndarray, affine: np.ndarray, *,
                      units_code: int = 2, forms: np.ndarray | None = None,
                      form_codes: tuple[int, int] = (1, 1)) -> None:

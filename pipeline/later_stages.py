@@ -11,7 +11,7 @@ from pipeline.config import Config
 from pipeline.errors import InputError, UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
-from pipeline.io import track_path
+from pipeline.naming import track_path
 from pipeline.sidecars import EVENT_COLUMNS, REGISTRATION_COLUMNS
 from pipeline.volumes import LabelledScan
 

@@ -15,7 +15,8 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from pipeline.io import UNIT_TO_MM, track_path
+from pipeline.io import UNIT_TO_MM
+from pipeline.naming import track_path
 from pipeline.tables import read_table
 
 #: Files the report reads, with what they hold (for "missing" messages). Optional ones last.

@@ -14,12 +14,13 @@ from pipeline import __version__
 from pipeline.batch import ScanResult, run_tasks, start_pool_server, volumes_task
 from pipeline.config import Config
 from pipeline.inputs import Scan, read_inputs
+from pipeline.naming import track_path
 from pipeline.tables import write_sidecar, write_table
 from pipeline.volumes import LESION_COLUMNS, LabelledScan
 
 ERROR_COLUMNS = ("subject", "session", "path", "stage", "reason")
 MASK_COLUMNS = ("subject", "session", "day", "mask", "image", "group", "components", "volume_mm3",
-                "voxel_volume_mm3", "shape_x", "shape_y", "shape_z", "sha256")
+                "voxel_volume_mm3", "shape_x", "shape_y", "shape_z", "sha256", "track_image")
 
 
 def say(message: str) -> None:
@@ -59,7 +60,8 @@ def error_row(scan: Scan, reason: str, stage: str) -> dict:
     resolved path."""
     reason = scan.shown(reason)
     if scan.source and scan.source not in reason and (not scan.mask or scan.mask not in reason):
-        reason = f"{scan.source} ({scan.mask or 'no mask'}): {reason}"
+        shown = "" if scan.source == scan.mask else f" ({scan.mask or 'no mask'})"
+        reason = f"{scan.source}{shown}: {reason}"
     return {"subject": scan.subject, "session": scan.session, "path": scan.mask,
             "stage": stage, "reason": reason}
 
@@ -127,7 +129,8 @@ def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
                           "volume_mm3": float(np.sum(columns["volume_mm3"])),
                           "voxel_volume_mm3": float(abs(_det(result.affine))),
                           "shape_x": result.shape[0], "shape_y": result.shape[1],
-                          "shape_z": result.shape[2], "sha256": result.sha256})
+                          "shape_z": result.shape[2], "sha256": result.sha256,
+                          "track_image": track_path(Path(), scan.subject, scan.session).as_posix()})
     if not parts:
         return pd.DataFrame(columns=list(LESION_COLUMNS)), \
             pd.DataFrame(mask_rows, columns=list(MASK_COLUMNS))

@@ -56,6 +56,8 @@ MASK_SIDECAR = {
     "shape_y": {"Description": "Grid size along voxel axis j"},
     "shape_z": {"Description": "Grid size along voxel axis k"},
     "sha256": {"Description": "SHA-256 of the mask file's bytes"},
+    "track_image": {"Description": "Track image that stage 2 writes for this mask, relative to "
+                    "the output folder (named from the labels' ASCII letters and digits)"},
 }
 
 ERROR_SIDECAR = {

@@ -339,7 +339,7 @@ def test_bids_subject_without_sessions_tsv(tmp_path):
     out = tmp_path / "out"
     code, err = call(["run", root, "-o", out, "-q"])
     assert code == 1
-    assert_reported(out, err, "N", "sub-N_sessions.tsv", "no acq_time", sessions=("1", "2"))
+    assert_reported(out, err, "N", "sub-N_sessions.tsv", "not found", sessions=("1", "2"))
     paths = errors_of(out).path.tolist()
     assert paths == [f"sub-N/ses-{s}/anat/sub-N_ses-{s}_desc-lesion_mask.nii.gz" for s in "12"]
     assert_good_subject_intact(out)
