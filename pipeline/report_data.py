@@ -97,6 +97,10 @@ def load_inputs(out_dir: str | Path) -> ReportInputs:
             problems["provenance.json"] = f"provenance.json could not be read ({_short(exc)})."
     if not (out / "tracks").is_dir():
         problems["tracks/"] = "tracks/ is missing: lesion slices cannot be drawn."
+    from pipeline.run_state import problems as mixed_runs
+
+    for number, text in enumerate(mixed_runs(out, "report"), start=1):
+        problems[f"run state {number}"] = f"Out of date: {text}; the page shows it as it is."
     return ReportInputs(out, tables, problems, provenance)
 
 

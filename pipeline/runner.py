@@ -37,6 +37,7 @@ class Stage1:
     errors: list[dict] = field(default_factory=list)
     lesions: pd.DataFrame | None = None
     masks: pd.DataFrame | None = None
+    reused: int = 0          # scans whose result an earlier run stored (not one of this run)
 
     @property
     def recomputed(self) -> int:
@@ -82,6 +83,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     todo = [s for s in scans if not s.error]
     cache_dir = str(out / ".cache" / "volumes") if use_cache else None
     digest = f"{__version__}|{config.digest('volumes')}"
+    earlier = _entries(cache_dir)
     tasks = [(volumes_task, (s.subject, s.session, str(s.mask_path), s.labels, config.volumes,
                              cache_dir, digest)) for s in todo]
     if progress:
@@ -90,6 +92,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
                                                      scheduler=scheduler), start=1):
         scan = todo[index]
         stage.results[scan.key] = result.compact()    # one dense image at a time in memory
+        stage.reused += bool(result.cached and _entry(result, digest, scan) in earlier)
         if not result.ok:
             stage.errors.append(error_row(scan, result.error, "volumes"))
         elif scan.image_path is not None:
@@ -104,6 +107,20 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     if write:
         write_stage1(stage, out)
     return stage
+
+
+def _entries(cache_dir: str | None) -> set[str]:
+    """Names of the cache entries present before this run (a scan whose content repeats
+    another scan of the same run hits an entry too, but is not reused from an earlier run)."""
+    import os
+
+    return set(os.listdir(cache_dir)) if cache_dir and os.path.isdir(cache_dir) else set()
+
+
+def _entry(result: ScanResult, digest: str, scan: Scan) -> str:
+    from pipeline.cache import cache_key
+
+    return f"{cache_key(result.sha256, digest, scan.labels)}.npz"
 
 
 def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
