@@ -67,15 +67,16 @@ def error_row(scan: Scan, reason: str, stage: str) -> dict:
 
 def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: int = 1,
                 scheduler: str | None = None, progress: Callable[[int, int], None] | None = None,
-                use_cache: bool = True, write: bool = True) -> Stage1:
+                use_cache: bool = True, write: bool = True,
+                inputs: tuple[list[Scan], str] | None = None) -> Stage1:
     """Stage 1 over every scan of INPUT; writes lesions.tsv, masks.tsv and errors.tsv.
 
-    With ``write=False`` nothing is written (used to rebuild stage 1 from the cache for
-    ``match OUT``).
+    With ``write=False`` nothing is written. ``inputs`` are the scans and kind of INPUT when
+    the caller has read them already (to refuse a bad input before it marks OUT in progress).
     """
     if scheduler is None:
         start_pool_server(workers)      # its imports overlap the reading of the inputs
-    scans, kind = read_inputs(input_path, desc=config.volumes.desc)
+    scans, kind = inputs or read_inputs(input_path, desc=config.volumes.desc)
     stage = Stage1(scans=scans, kind=kind)
     for scan in scans:
         if scan.error:

@@ -15,8 +15,11 @@ import pandas as pd
 from pipeline import DISCLAIMER, __version__
 from pipeline.config import Config
 from pipeline.errors import UsageError
+from pipeline.inputs import read_inputs
 from pipeline.later_stages import events_table
 from pipeline import run_state
+from pipeline.run_steps import (begin_replacing, drop_report, failed_text, input_record,
+                                update_provenance, warn_repeated_masks)
 from pipeline.runner import Stage1, read_errors, run_volumes, say, write_errors, write_json
 
 
@@ -66,7 +69,7 @@ class Progress:
 def _report_stage1(stage: Stage1) -> None:
     for row in stage.errors:
         say(f"error: sub {row['subject']} ses {row['session']}: {row['reason']}")
-    _warn_repeated_masks(stage)
+    warn_repeated_masks(stage)
     warned = sum(1 for r in stage.results.values() if r.warnings)
     if warned:
         say(f"note: {warned} mask(s) have header warnings (e.g. unknown units, sform/qform "
@@ -77,9 +80,10 @@ def volumes_only(input: Path, out: Path, *, config: Config, config_path: Path | 
                  workers: int = 1, scheduler: str | None = None, quiet: bool = False) -> int:
     started = _now()
     with locked(out):
-        run = _begin_stage1(out, "volumes", ("volumes",))
+        scans = read_inputs(input, desc=config.volumes.desc)    # usage errors first
+        run = begin_replacing(out, "volumes", ("volumes",))
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
-                            progress=Progress("masks", quiet=quiet))
+                            progress=Progress("masks", quiet=quiet), inputs=scans)
         run_state.stage_done(out, run, "volumes")
         _report_stage1(stage)
         write_provenance(out, input=input, kind=stage.kind, config=config,
@@ -87,37 +91,11 @@ def volumes_only(input: Path, out: Path, *, config: Config, config_path: Path | 
         run_state.finish(out, run)
     ok = len(stage.results) - sum(1 for r in stage.results.values() if not r.ok)
     say(f"wrote {out / 'lesions.tsv'}: {len(stage.lesions)} lesion components from {ok} masks; "
-        f"{_failed_text(stage)} (see errors.tsv)")
+        f"{failed_text(stage)} (see errors.tsv)")
     if (out / "longitudinal.tsv").exists():
         say("note: matches.tsv, longitudinal.tsv and fits.tsv in this folder are from before; "
             "run 'lesion-growth match' and 'fit' next")
     return 1 if stage.errors else 0
-
-
-def _begin_stage1(out: Path, command: str, stages: tuple[str, ...]) -> str:
-    """Mark OUT as in progress, then remove what describes the run whose tables are about to
-    be replaced (provenance.json, report.html): an interrupted run never leaves them behind."""
-    run = run_state.begin(out, command, stages)
-    for name in ("provenance.json", "report.html"):
-        (out / name).unlink(missing_ok=True)
-    return run
-
-
-def _failed_text(stage: Stage1) -> str:
-    """'N failed' counting input rows (a refused duplicated session is two rows), plus the
-    scans whose lesions were measured but whose image cannot be used."""
-    failed = sum(1 for e in stage.errors if e["stage"] != "image")
-    images = len(stage.errors) - failed
-    return f"{failed} failed" + (f", {images} with an unusable image" if images else "")
-
-
-def _warn_repeated_masks(stage: Stage1) -> None:
-    from pipeline.shared_masks import repeated_masks
-
-    shas = {key: r.sha256 for key, r in stage.results.items()
-            if r.ok and r.columns is not None and len(r.columns["component"])}
-    for subject, _, message in repeated_masks(stage.scans, shas):
-        say(f"warning: sub {subject}: {message}")
 
 
 def check_inputs(input: Path, *, config: Config) -> int:
@@ -174,7 +152,7 @@ def write_provenance(out: Path, *, input: Path, kind: str, config: Config,
     data = {
         "tool": {"name": "lesion-growth", "version": __version__},
         "disclaimer": DISCLAIMER,
-        "input": _input_record(out, input, kind, stage),
+        "input": input_record(out, input, kind, stage),
         "files": {k: {"path": str(v), "sha256": _maybe_sha(Path(v))}
                   for k, v in files.items() if v is not None},
         "configuration": config.as_dict(),
@@ -187,38 +165,6 @@ def write_provenance(out: Path, *, input: Path, kind: str, config: Config,
         "stages": run_state.run_ids(out),
     }
     write_json(out / "provenance.json", data)
-
-
-def _input_record(out: Path, input: Path, kind: str, stage: Stage1 | None) -> dict:
-    """The input as given, where it lies relative to OUT (so later commands find it from any
-    folder) and a digest of the scans it lists (so they notice when it changed)."""
-    from pipeline.recorded import location_from_out, scans_digest
-
-    record = {"path": str(input), "kind": kind,
-              "path_from_out": location_from_out(out, input)}
-    if stage is not None:
-        record["scans_sha256"] = scans_digest(stage.scans)
-    return record
-
-
-def update_provenance(out: Path, *, config: Config, sections: tuple[str, ...],
-                      files: dict[str, Path | None]) -> None:
-    """After ``match``/``fit``/``evaluate``: the settings and files that command used, and
-    which run wrote each stage."""
-    path = out / "provenance.json"
-    if not path.is_file():
-        return
-    data = json.loads(path.read_text(encoding="utf-8"))
-    for name in sections:
-        data.setdefault("configuration", {})[name] = config.as_dict()[name]
-    known = data.setdefault("files", {})
-    for name, value in files.items():
-        known.pop(name, None)
-        if value is not None:
-            known[name] = {"path": str(value), "sha256": _maybe_sha(Path(value))}
-    data["stages"] = run_state.run_ids(out)
-    data["updated"] = _now()
-    write_json(path, data)
 
 
 def _maybe_sha(path: Path | None) -> str | None:
@@ -328,9 +274,10 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
         events_table(events)                          # usage errors before any work
     with locked(out):
         _remove_stale_temporaries(out)
-        run = _begin_stage1(out, "run", ("volumes", "match", "fit"))
+        scans = read_inputs(input, desc=config.volumes.desc)    # usage errors first
+        run = begin_replacing(out, "run", ("volumes", "match", "fit"))
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
-                            progress=Progress("masks", quiet=quiet))
+                            progress=Progress("masks", quiet=quiet), inputs=scans)
         run_state.stage_done(out, run, "volumes")
         _report_stage1(stage)
         provenance = dict(input=input, kind=stage.kind, config=config, config_path=config_path,
@@ -372,7 +319,7 @@ def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | No
     same = sum(1 for r in stage.results.values() if r.cached) - stage.reused
     say(f"processed {scans} scans ({stage.recomputed} computed, {stage.reused} reused from an "
         "earlier run" + (f", {same} identical to another scan of this run" if same else "")
-        + f"); {_failed_text(stage)}"
+        + f"); {failed_text(stage)}"
         + (f", {len(errors)} later-stage problem(s)" if errors else ""))
     say(f"wrote lesions.tsv, masks.tsv, matches.tsv, longitudinal.tsv, fits.tsv, group_fits.tsv, "
         f"tracks/, errors.tsv, provenance.json in {out}")
@@ -400,24 +347,20 @@ def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
     return [e for e in read_errors(out) if e.get("stage") not in stages]
 
 
-def _report_before(out: Path) -> bool:
-    """Whether OUT had a report, which is removed now (it would show tables being replaced)."""
-    had = (out / "report.html").exists()
-    (out / "report.html").unlink(missing_ok=True)
-    return had
-
-
 def match_only(out: Path, *, config: Config, corrections: Path | None = None) -> int:
     """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections), on stage 1 as
     recorded (refused when an input changed since)."""
     from pipeline.recorded import recorded_stage1
 
     with locked(out):
+        table = _read_corrections(corrections)
         provenance = _recorded(out, "match")
         stage = recorded_stage1(out, provenance, check_images=config.matching.register)
-        table = _read_corrections(corrections)
+        if corrections is None and "corrections" in provenance.get("files", {}):
+            say(f"note: no --corrections: the automatic result (the earlier match used "
+                f"{provenance['files']['corrections']['path']})")
         run = run_state.begin(out, "match", ("match",))
-        had_report = _report_before(out)
+        had_report = drop_report(out)
         errors = _match_stage(stage, out, config=config, corrections=table, run=run)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
@@ -451,7 +394,7 @@ def fit_only(out: Path, *, config: Config, events: Path | None = None) -> int:
             say(f"note: no --events: fitting without phases (the earlier fit used "
                 f"{provenance['files']['events']['path']})")
         run = run_state.begin(out, "fit", ("fit",))
-        had_report = _report_before(out)
+        had_report = drop_report(out)
         _fit_stage(out, config=config, events=table, run=run)
         kept = _keep_errors(out, ("events", "fit"))
         write_errors(kept + errors, out)
