@@ -235,3 +235,30 @@ def test_summary_counts_rows_and_reuse_and_warns_of_a_shared_mask(tmp_path):
     assert [r[:5] for r in rows if r[4] == "same-mask"] == [
         ["warning", "A", "2", "A1.nii.gz", "same-mask"],
         ["warning", "A", "3", "A1.nii.gz", "same-mask"]]
+
+
+def test_match_keeps_the_volume_settings_stage_1_used(done):
+    # Contract: `match OUT` works on the lesions.tsv already in OUT; another connectivity in
+    # --config must not relabel the components behind it.
+    root, out = done
+    config = root / "six.toml"
+    config.write_text("[volumes]\nconnectivity = 6\n")
+    before = read_table(out / "longitudinal.tsv")
+    code, err = call(["match", out, "--config", config])
+    assert code == 0, err
+    assert read_table(out / "longitudinal.tsv").equals(before)
+
+
+def test_fit_without_events_drops_the_old_phases_and_says_so(tmp_path):
+    make_input(tmp_path / "in")
+    events = tmp_path / "events.tsv"
+    events.write_text("subject\tday\tevent\nA\t50\tradiosurgery\n")
+    out = tmp_path / "out"
+    assert call(["run", tmp_path / "in" / "manifest.tsv", "-o", out, "-q", "--events",
+                 events])[0] == 0
+    assert (out / "events.tsv").exists()
+    code, err = call(["fit", out])
+    assert code == 0 and any("no --events" in line for line in err)
+    assert not (out / "events.tsv").exists()
+    assert set(read_table(out / "fits.tsv").phase) == {"untreated"}
+    assert "events" not in json.loads((out / "provenance.json").read_text())["files"]
