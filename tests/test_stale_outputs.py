@@ -262,3 +262,20 @@ def test_fit_without_events_drops_the_old_phases_and_says_so(tmp_path):
     assert not (out / "events.tsv").exists()
     assert set(read_table(out / "fits.tsv").phase) == {"untreated"}
     assert "events" not in json.loads((out / "provenance.json").read_text())["files"]
+
+
+def test_report_leaves_out_an_mri_image_changed_after_the_run(tmp_path):
+    # provenance.json records each image's SHA-256 (contract); an overlay drawn from another
+    # image would show QA staff a scan the tables were not made from.
+    make_input(tmp_path / "in", subjects=("A",))
+    rows = (tmp_path / "in" / "manifest.tsv").read_text().splitlines()
+    for t in range(3):
+        shutil.copy(tmp_path / "in" / f"A{t}.nii.gz", tmp_path / "in" / f"mri{t}.nii.gz")
+    (tmp_path / "in" / "manifest.tsv").write_text("\n".join(
+        [rows[0] + "\timage"] + [f"{r}\tmri{t}.nii.gz" for t, r in enumerate(rows[1:])]) + "\n")
+    out = tmp_path / "out"
+    assert call(["run", tmp_path / "in" / "manifest.tsv", "-o", out, "-q"])[0] == 0
+    assert "image changed after the run" not in (out / "report.html").read_text()
+    shutil.copy(tmp_path / "in" / "A2.nii.gz", tmp_path / "in" / "mri0.nii.gz")
+    assert call(["report", out])[0] == 0
+    assert "image changed after the run" in (out / "report.html").read_text()
