@@ -279,3 +279,24 @@ def test_report_leaves_out_an_mri_image_changed_after_the_run(tmp_path):
     shutil.copy(tmp_path / "in" / "A2.nii.gz", tmp_path / "in" / "mri0.nii.gz")
     assert call(["report", out])[0] == 0
     assert "image changed after the run" in (out / "report.html").read_text()
+
+
+def test_match_refuses_a_bids_folder_whose_session_dates_changed(tmp_path):
+    # BIDS: session dates come from sub-<label>_sessions.tsv (acq_time); a changed date changes
+    # the days behind every later table, so the recorded stage 1 no longer holds.
+    make_input(tmp_path / "flat", subjects=("A",))
+    root = tmp_path / "bids"
+    for t in range(1, len(DATES) + 1):
+        anat = root / "sub-A" / f"ses-{t}" / "anat"
+        anat.mkdir(parents=True)
+        shutil.copy(tmp_path / "flat" / f"A{t - 1}.nii.gz", anat / f"sub-A_ses-{t}_mask.nii.gz")
+    sessions = root / "sub-A" / "sub-A_sessions.tsv"
+    sessions.write_text("session_id\tacq_time\n" + "".join(
+        f"ses-{t}\t{d}\n" for t, d in enumerate(DATES, start=1)))
+    out = tmp_path / "out"
+    assert call(["run", root, "-o", out, "-q"])[0] == 0
+    assert call(["match", out], cwd=tmp_path / "flat")[0] == 0
+    sessions.write_text(sessions.read_text().replace(DATES[1], "2024-02-20"))
+    code, err = call(["match", out])
+    assert code == 2 and len(err) == 1, err
+    assert "lists other scans, days or files than when stage 1 ran" in err[0]
