@@ -98,6 +98,10 @@ def load_inputs(out_dir: str | Path) -> ReportInputs:
             problems["provenance.json"] = f"provenance.json could not be read ({_short(exc)})."
     if not (out / "tracks").is_dir():
         problems["tracks/"] = "tracks/ is missing: lesion slices cannot be drawn."
+    from pipeline.run_state import problems as mixed_runs
+
+    for number, text in enumerate(mixed_runs(out, "report"), start=1):
+        problems[f"run state {number}"] = f"Out of date: {text}; the page shows it as it is."
     return ReportInputs(out, tables, problems, provenance)
 
 
@@ -191,6 +195,8 @@ class ScanCache:
             return None, "image not found"
         if scan is None:
             return None, "no track image"
+        if _changed(self.inputs, self.subject, session, path):
+            return None, "image changed after the run"
         try:
             img = nib.load(str(path))
             mm = np.diag([_mm_per_unit(img)] * 3 + [1.0]) @ img.affine
@@ -216,6 +222,19 @@ class ScanCache:
             return None
         low, high = np.percentile(sample, [1.0, 99.5])
         return float(low), float(max(high, low + 1e-6))
+
+
+def _changed(inputs: ReportInputs, subject: str, session: str, path: Path) -> bool:
+    """Whether the image's SHA-256 differs from the one provenance.json recorded for it."""
+    import hashlib
+
+    scans = inputs.provenance.get("scans", [])
+    recorded = next((s.get("image_sha256") for s in scans if isinstance(s, dict)
+                     and s.get("subject") == subject and s.get("session") == session), None)
+    if not recorded:
+        return False
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest() != recorded
 
 
 def _mm_per_unit(img) -> float:
@@ -252,6 +271,9 @@ def find_image(inputs: ReportInputs, given: str) -> Path | None:
     source = inputs.provenance.get("input", {}) if isinstance(
         inputs.provenance.get("input"), dict) else {}
     bases: list[Path] = []
+    if source.get("path_from_out"):        # where the input was at run time, seen from OUT
+        root = inputs.out_dir / str(source["path_from_out"])
+        bases.append(root if source.get("kind") == "bids" or root.is_dir() else root.parent)
     if source.get("path"):
         root = Path(str(source["path"]))
         root = root if source.get("kind") == "bids" or root.is_dir() else root.parent

@@ -219,7 +219,7 @@ def _problems(problems: dict[str, str]) -> str:
         return ("<section id='inputs'><p class='ok'>Every input the report reads was found."
                 "</p></section>")
     items = "".join(f"<li class='missing'>{esc(m)}</li>" for m in problems.values())
-    return (f"<section id='inputs'><h2>Inputs not available</h2><ul>{items}</ul>"
+    return (f"<section id='inputs'><h2>Inputs not available or out of date</h2><ul>{items}</ul>"
             "<p>The rest of the page shows what could be read.</p></section>")
 
 

@@ -38,6 +38,7 @@ class Stage1:
     errors: list[dict] = field(default_factory=list)
     lesions: pd.DataFrame | None = None
     masks: pd.DataFrame | None = None
+    reused: int = 0          # scans whose result an earlier run stored (not one of this run)
 
     @property
     def recomputed(self) -> int:
@@ -68,15 +69,16 @@ def error_row(scan: Scan, reason: str, stage: str) -> dict:
 
 def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: int = 1,
                 scheduler: str | None = None, progress: Callable[[int, int], None] | None = None,
-                use_cache: bool = True, write: bool = True) -> Stage1:
+                use_cache: bool = True, write: bool = True,
+                inputs: tuple[list[Scan], str] | None = None) -> Stage1:
     """Stage 1 over every scan of INPUT; writes lesions.tsv, masks.tsv and errors.tsv.
 
-    With ``write=False`` nothing is written (used to rebuild stage 1 from the cache for
-    ``match OUT``).
+    With ``write=False`` nothing is written. ``inputs`` are the scans and kind of INPUT when
+    the caller has read them already (to refuse a bad input before it marks OUT in progress).
     """
     if scheduler is None:
         start_pool_server(workers)      # its imports overlap the reading of the inputs
-    scans, kind = read_inputs(input_path, desc=config.volumes.desc)
+    scans, kind = inputs or read_inputs(input_path, desc=config.volumes.desc)
     stage = Stage1(scans=scans, kind=kind)
     for scan in scans:
         if scan.error:
@@ -84,6 +86,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     todo = [s for s in scans if not s.error]
     cache_dir = str(out / ".cache" / "volumes") if use_cache else None
     digest = f"{__version__}|{config.digest('volumes')}"
+    earlier = _entries(cache_dir)
     tasks = [(volumes_task, (s.subject, s.session, str(s.mask_path), s.labels, config.volumes,
                              cache_dir, digest)) for s in todo]
     if progress:
@@ -92,6 +95,7 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
                                                      scheduler=scheduler), start=1):
         scan = todo[index]
         stage.results[scan.key] = result.compact()    # one dense image at a time in memory
+        stage.reused += bool(result.cached and _entry(result, digest, scan) in earlier)
         if not result.ok:
             stage.errors.append(error_row(scan, result.error, "volumes"))
         elif scan.image_path is not None:
@@ -106,6 +110,20 @@ def run_volumes(input_path: str | Path, out: Path, *, config: Config, workers: i
     if write:
         write_stage1(stage, out)
     return stage
+
+
+def _entries(cache_dir: str | None) -> set[str]:
+    """Names of the cache entries present before this run (a scan whose content repeats
+    another scan of the same run hits an entry too, but is not reused from an earlier run)."""
+    import os
+
+    return set(os.listdir(cache_dir)) if cache_dir and os.path.isdir(cache_dir) else set()
+
+
+def _entry(result: ScanResult, digest: str, scan: Scan) -> str:
+    from pipeline.cache import cache_key
+
+    return f"{cache_key(result.sha256, digest, scan.labels)}.npz"
 
 
 def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:

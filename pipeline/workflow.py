@@ -15,7 +15,11 @@ import pandas as pd
 from pipeline import DISCLAIMER, __version__
 from pipeline.config import Config
 from pipeline.errors import UsageError
+from pipeline.inputs import read_inputs
 from pipeline.later_stages import events_table
+from pipeline import run_state
+from pipeline.run_steps import (begin_replacing, drop_report, failed_text, input_record,
+                                update_provenance, warn_repeated_masks)
 from pipeline.runner import Stage1, read_errors, run_volumes, say, write_errors, write_json
 
 
@@ -65,6 +69,7 @@ class Progress:
 def _report_stage1(stage: Stage1) -> None:
     for row in stage.errors:
         say(f"error: sub {row['subject']} ses {row['session']}: {row['reason']}")
+    warn_repeated_masks(stage)
     warned = sum(1 for r in stage.results.values() if r.warnings)
     if warned:
         say(f"note: {warned} mask(s) have header warnings (e.g. unknown units, sform/qform "
@@ -75,14 +80,21 @@ def volumes_only(input: Path, out: Path, *, config: Config, config_path: Path | 
                  workers: int = 1, scheduler: str | None = None, quiet: bool = False) -> int:
     started = _now()
     with locked(out):
+        scans = read_inputs(input, desc=config.volumes.desc)    # usage errors first
+        run = begin_replacing(out, "volumes", ("volumes",))
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
-                            progress=Progress("masks", quiet=quiet))
+                            progress=Progress("masks", quiet=quiet), inputs=scans)
+        run_state.stage_done(out, run, "volumes")
         _report_stage1(stage)
         write_provenance(out, input=input, kind=stage.kind, config=config,
                          config_path=config_path, stage=stage, started=started)
+        run_state.finish(out, run)
     ok = len(stage.results) - sum(1 for r in stage.results.values() if not r.ok)
     say(f"wrote {out / 'lesions.tsv'}: {len(stage.lesions)} lesion components from {ok} masks; "
-        f"{len(stage.errors)} failed (see errors.tsv)")
+        f"{failed_text(stage)} (see errors.tsv)")
+    if (out / "longitudinal.tsv").exists():
+        say("note: matches.tsv, longitudinal.tsv and fits.tsv in this folder are from before; "
+            "run 'lesion-growth match' and 'fit' next")
     return 1 if stage.errors else 0
 
 
@@ -99,6 +111,11 @@ def check_inputs(input: Path, *, config: Config) -> int:
         failed += any(p.level == "error" for p in problems)
         for p in problems:
             print(f"{p.level}\t{p.subject}\t{p.session}\t{p.path}\t{p.code}\t{p.message}")
+    from pipeline.shared_masks import repeated_masks
+
+    for subject, members, message in repeated_masks(scans):
+        for scan in members:
+            print(f"warning\t{subject}\t{scan.session}\t{scan.mask}\tsame-mask\t{message}")
     say(f"checked {len(scans)} scans from {kind} input: {len(scans) - failed} usable, "
         f"{failed} not usable")
     return 1 if failed else 0
@@ -135,7 +152,7 @@ def write_provenance(out: Path, *, input: Path, kind: str, config: Config,
     data = {
         "tool": {"name": "lesion-growth", "version": __version__},
         "disclaimer": DISCLAIMER,
-        "input": {"path": str(input), "kind": kind},
+        "input": input_record(out, input, kind, stage),
         "files": {k: {"path": str(v), "sha256": _maybe_sha(Path(v))}
                   for k, v in files.items() if v is not None},
         "configuration": config.as_dict(),
@@ -145,6 +162,7 @@ def write_provenance(out: Path, *, input: Path, kind: str, config: Config,
         "scans": inputs,
         "started": started,
         "finished": _now(),
+        "stages": run_state.run_ids(out),
     }
     write_json(out / "provenance.json", data)
 
@@ -213,15 +231,37 @@ def _remove_stale_temporaries(out: Path) -> None:
 
 
 def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
-                  corrections: pd.DataFrame | None, corrections_path: Path | None
+                  corrections: pd.DataFrame | None, corrections_path: Path | None, run: str
                   ) -> tuple[list[dict], dict[str, Path | None]]:
-    """Stages 2 and 3 and the report after stage 1; returns new error rows and files used."""
-    from pipeline.later_stages import run_fitting, run_matching
-
-    errors: list[dict] = []
-    errors += run_matching(stage, out, config=config, corrections=corrections)
-    run_fitting(out, config=config, events=_events(events, stage, errors, out))
+    """Stages 2 and 3 after stage 1; returns new error rows and files used."""
+    errors = _match_stage(stage, out, config=config, corrections=corrections, run=run)
+    _fit_stage(out, config=config, events=_events(events, stage, errors, out), run=run)
     return errors, {"events": events, "corrections": corrections_path}
+
+
+def _match_stage(stage: Stage1, out: Path, *, config: Config,
+                 corrections: pd.DataFrame | None, run: str) -> list[dict]:
+    """Stage 2, with the track images and registrations of an earlier match removed first (a
+    smaller input must not leave the images of subjects it no longer holds)."""
+    from pipeline.later_stages import run_matching
+
+    if (out / "tracks").is_dir():
+        for path in (out / "tracks").iterdir():
+            if path.is_file() and path.name.endswith((".nii", ".nii.gz")):
+                path.unlink()
+    (out / "registration.tsv").unlink(missing_ok=True)
+    errors = run_matching(stage, out, config=config, corrections=corrections)
+    run_state.stage_done(out, run, "match")
+    return errors
+
+
+def _fit_stage(out: Path, *, config: Config, events: pd.DataFrame | None, run: str) -> None:
+    from pipeline.later_stages import run_fitting
+
+    if events is None:
+        (out / "events.tsv").unlink(missing_ok=True)    # no events: no phases from before
+    run_fitting(out, config=config, events=events)
+    run_state.stage_done(out, run, "fit")
 
 
 def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None = None,
@@ -234,17 +274,22 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
         events_table(events)                          # usage errors before any work
     with locked(out):
         _remove_stale_temporaries(out)
+        scans = read_inputs(input, desc=config.volumes.desc)    # usage errors first
+        run = begin_replacing(out, "run", ("volumes", "match", "fit"))
         stage = run_volumes(input, out, config=config, workers=workers, scheduler=scheduler,
-                            progress=Progress("masks", quiet=quiet))
+                            progress=Progress("masks", quiet=quiet), inputs=scans)
+        run_state.stage_done(out, run, "volumes")
         _report_stage1(stage)
+        provenance = dict(input=input, kind=stage.kind, config=config, config_path=config_path,
+                          stage=stage, started=started)
+        write_provenance(out, **provenance)      # later commands can build on stage 1 now
         errors, files = _later_stages(stage, out, config=config, events=events,
-                                      corrections=table, corrections_path=corrections)
+                                      corrections=table, corrections_path=corrections, run=run)
         write_errors(stage.errors + errors, out)
         write_dataset_description(out)
+        write_provenance(out, **provenance, extra_files=files)    # before the report reads it
         report = _report(out, config)
-        write_provenance(out, input=input, kind=stage.kind, config=config,
-                         config_path=config_path, stage=stage, started=started,
-                         extra_files=files)
+        run_state.finish(out, run)
     _final_lines(out, stage, errors, report)
     return 1 if stage.errors or errors or report is None else 0
 
@@ -271,10 +316,11 @@ def _refresh_report(out: Path, config: Config) -> None:
 
 def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | None) -> None:
     scans = len(stage.scans)
-    failed = len({(e["subject"], e["session"]) for e in stage.errors})
-    say(f"processed {scans} scans ({stage.recomputed} computed, "
-        f"{sum(1 for r in stage.results.values() if r.cached)} reused from an earlier run); "
-        f"{failed} failed" + (f", {len(errors)} later-stage problem(s)" if errors else ""))
+    same = sum(1 for r in stage.results.values() if r.cached) - stage.reused
+    say(f"processed {scans} scans ({stage.recomputed} computed, {stage.reused} reused from an "
+        "earlier run" + (f", {same} identical to another scan of this run" if same else "")
+        + f"); {failed_text(stage)}"
+        + (f", {len(errors)} later-stage problem(s)" if errors else ""))
     say(f"wrote lesions.tsv, masks.tsv, matches.tsv, longitudinal.tsv, fits.tsv, group_fits.tsv, "
         f"tracks/, errors.tsv, provenance.json in {out}")
     if report is not None:
@@ -282,17 +328,19 @@ def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | No
     say(DISCLAIMER)
 
 
-def _rebuild_stage1(out: Path, config: Config) -> tuple[Stage1, dict]:
-    """Stage 1 of an earlier run, from its inputs and cache, without rewriting its tables."""
+def _recorded(out: Path, stage: str) -> dict:
+    """provenance.json of the run stage ``stage`` builds on, after checking that the tables
+    it reads come from one finished run (UsageError naming the table and what to rerun)."""
     from pipeline.later_stages import load_provenance
 
+    if not out.is_dir():
+        raise UsageError(f"{out}: output folder not found")
+    run_state.require(out, stage)
     provenance = load_provenance(out)
-    source = Path(provenance["input"]["path"])
-    if not source.exists():
-        raise UsageError(f"{out}: the input of the earlier run ({source}) is not reachable from "
-                         "here; run from the same folder, or rerun 'lesion-growth run'")
-    stage = run_volumes(source, out, config=config, write=False)
-    return stage, provenance
+    if run_state.read_state(out) is None:
+        say(f"note: {out} has no record of which run wrote its tables (an older version wrote "
+            "it); they are taken as one set")
+    return provenance
 
 
 def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
@@ -300,16 +348,27 @@ def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
 
 
 def match_only(out: Path, *, config: Config, corrections: Path | None = None) -> int:
-    """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections)."""
-    from pipeline.later_stages import run_matching
+    """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections), on stage 1 as
+    recorded (refused when an input changed since)."""
+    from pipeline.recorded import recorded_stage1
 
     with locked(out):
-        stage, _ = _rebuild_stage1(out, config)
-        errors = run_matching(stage, out, config=config,
-                              corrections=_read_corrections(corrections))
+        table = _read_corrections(corrections)
+        provenance = _recorded(out, "match")
+        stage = recorded_stage1(out, provenance, check_images=config.matching.register)
+        if corrections is None and "corrections" in provenance.get("files", {}):
+            say(f"note: no --corrections: the automatic result (the earlier match used "
+                f"{provenance['files']['corrections']['path']})")
+        run = run_state.begin(out, "match", ("match",))
+        had_report = drop_report(out)
+        errors = _match_stage(stage, out, config=config, corrections=table, run=run)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
-        _refresh_report(out, config)
+        update_provenance(out, config=config, sections=("matching",),
+                          files={"corrections": corrections})
+        run_state.finish(out, run)
+        if had_report:
+            _refresh_report(out, config)
     say(f"wrote matches.tsv, longitudinal.tsv and tracks/ in {out}"
         + (f" (with corrections from {corrections})" if corrections else "")
         + "; fits.tsv is from before: run 'lesion-growth fit' next")
@@ -318,28 +377,44 @@ def match_only(out: Path, *, config: Config, corrections: Path | None = None) ->
 
 def fit_only(out: Path, *, config: Config, events: Path | None = None) -> int:
     """``lesion-growth fit OUT``: stage 3 again on longitudinal.tsv."""
-    from pipeline.later_stages import run_fitting
+    from pipeline.recorded import recorded_scans
 
     if not (out / "longitudinal.tsv").exists():
         raise UsageError(f"{out}: no longitudinal.tsv; run 'lesion-growth match' or 'run' first")
+    if events is not None:
+        events_table(events)                          # usage errors before any work
     with locked(out):
+        provenance = _recorded(out, "fit")
         errors: list[dict] = []
         table = None
         if events is not None:
-            stage, _ = _rebuild_stage1(out, config)
-            table = _events(events, stage, errors)
-        run_fitting(out, config=config, events=table)
+            stage = Stage1(scans=recorded_scans(out, provenance), kind="")
+            table = _events(events, stage, errors, out)
+        elif "events" in provenance.get("files", {}):
+            say(f"note: no --events: fitting without phases (the earlier fit used "
+                f"{provenance['files']['events']['path']})")
+        run = run_state.begin(out, "fit", ("fit",))
+        had_report = drop_report(out)
+        _fit_stage(out, config=config, events=table, run=run)
         kept = _keep_errors(out, ("events", "fit"))
         write_errors(kept + errors, out)
-        _refresh_report(out, config)
+        update_provenance(out, config=config, sections=("fitting",), files={"events": events})
+        run_state.finish(out, run)
+        if had_report:
+            _refresh_report(out, config)
     say(f"wrote fits.tsv and group_fits.tsv in {out}")
     return 1 if kept or errors else 0
 
 
 def report_only(out: Path, *, config: Config) -> int:
+    """``lesion-growth report OUT`` (under OUT's lock: never while a run changes the tables);
+    tables of different runs are named on stderr and on the page."""
     if not out.is_dir():
         raise UsageError(f"{out}: output folder not found")
-    path = _report(out, config)
+    with locked(out):
+        for problem in run_state.problems(out, "report"):
+            say(f"warning: {out}: {problem}")
+        path = _report(out, config)
     if path is None:
         return 1
     say(f"report: {path}")
@@ -357,21 +432,26 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
         raise UsageError(f"{out}: no fits.tsv; run 'lesion-growth fit' or 'run' first")
     if not Path(outcomes).is_file():
         raise UsageError(f"{outcomes}: outcomes file not found")
-    fits = read_table(out / "fits.tsv")
-    table = read_table(outcomes, text_columns=("subject", "outcome"))
-    try:
-        result = evaluate.evaluate_marker(fits, table, figures=figures, phase=phase, model=model,
-                                          positive=positive)
-        thresholds = evaluate.threshold_table(fits, table, figures=figures, phase=phase,
+    with locked(out):
+        run_state.require(out, "evaluate")
+        fits = read_table(out / "fits.tsv")
+        table = read_table(outcomes, text_columns=("subject", "outcome"))
+        try:
+            result = evaluate.evaluate_marker(fits, table, figures=figures, phase=phase,
                                               model=model, positive=positive)
-    except ValueError as exc:
-        raise UsageError(f"{outcomes}: {exc}") from None
-    write_table(result, out / "evaluation.tsv")
-    write_table(thresholds, out / "evaluation_thresholds.tsv")
-    write_sidecar(out / "evaluation_thresholds.tsv", evaluate.THRESHOLD_COLUMNS)
-    doc = getattr(evaluate, "COLUMNS", None)
-    if isinstance(doc, dict):
-        write_sidecar(out / "evaluation.tsv", doc)
+            thresholds = evaluate.threshold_table(fits, table, figures=figures, phase=phase,
+                                                  model=model, positive=positive)
+        except ValueError as exc:
+            raise UsageError(f"{outcomes}: {exc}") from None
+        run = run_state.begin(out, "evaluate", ("evaluate",))
+        write_table(result, out / "evaluation.tsv")
+        write_table(thresholds, out / "evaluation_thresholds.tsv")
+        write_sidecar(out / "evaluation_thresholds.tsv", evaluate.THRESHOLD_COLUMNS)
+        doc = getattr(evaluate, "COLUMNS", None)
+        if isinstance(doc, dict):
+            write_sidecar(out / "evaluation.tsv", doc)
+        run_state.stage_done(out, run, "evaluate")
+        run_state.finish(out, run)
     say(f"wrote evaluation.tsv in {out}")
     return 0
 

@@ -10,6 +10,20 @@ import time
 
 from pipeline.batch import ScanResult, volumes_task
 
+#: ``python -c KILL_AT_RENAME NAME ARGS...``: the command line ARGS, killed by SIGKILL inside the
+#: rename that would put a file ending in NAME in place (the table is written, not yet renamed).
+KILL_AT_RENAME = """
+import os, signal, sys
+real_replace = os.replace
+def replace(src, dst, *args, **kwargs):
+    if os.fspath(dst).endswith(sys.argv[1]):
+        os.kill(os.getpid(), signal.SIGKILL)   # dies with the table written but not renamed
+    return real_replace(src, dst, *args, **kwargs)
+os.replace = replace
+from pipeline.cli import main
+sys.exit(main(sys.argv[2:]))
+"""
+
 
 def crash_reading(subject: str, session: str, mask_path: str, *rest) -> ScanResult:
     """Simulate a crash inside a C library while reading one scan: the process dies at once."""
