@@ -219,7 +219,8 @@ def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | No
     from pipeline.later_stages import run_fitting, run_matching
 
     errors: list[dict] = []
-    errors += run_matching(stage, out, config=config, corrections=corrections)
+    errors += run_matching(stage, out, config=config, corrections=corrections,
+                           corrections_path=corrections_path)
     run_fitting(out, config=config, events=_events(events, stage, errors, out))
     return errors, {"events": events, "corrections": corrections_path}
 
@@ -306,7 +307,8 @@ def match_only(out: Path, *, config: Config, corrections: Path | None = None) ->
     with locked(out):
         stage, _ = _rebuild_stage1(out, config)
         errors = run_matching(stage, out, config=config,
-                              corrections=_read_corrections(corrections))
+                              corrections=_read_corrections(corrections),
+                              corrections_path=corrections)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
         _refresh_report(out, config)
