@@ -8,8 +8,10 @@ assignment (``scipy.optimize.linear_sum_assignment``) on ``1 - score``, forbidde
 a large finite cost and dropped afterwards. A component left unassigned that overlaps (or holds
 the centroid of) a frontier component joins that lesion: a split. A component of the previous
 session left unassigned that overlaps a current component flows into it: a merge, whose survivor
-is the parent lesion larger at its last session. Ids, statuses and corrections follow
-``pipeline.tracks``.
+is the parent lesion larger at its last session. Lesion labels, the return of a merged lesion
+after its survivor separates again, and QA corrections (pins of a second pass, so that the
+sessions after a correction follow it) are ``pipeline.identity``'s; ids and statuses follow
+``pipeline.tracks``. Exact score ties go to the frontier component of the more recent session.
 
 Columns added: ``matches`` (``MATCHES_COLUMNS``), ``longitudinal`` (``LONGITUDINAL_COLUMNS``),
 ``assignment`` (``ASSIGNMENT_COLUMNS``). Research use only; see ``pipeline.DISCLAIMER``.
@@ -112,6 +114,7 @@ ASSIGNMENT_COLUMNS: dict[str, dict] = {
 COLUMNS: dict[str, dict] = {"matches.tsv": MATCHES_COLUMNS,
                             "longitudinal.tsv": LONGITUDINAL_COLUMNS}
 _BIG = 1e6
+_RECENT = 1e-9      # cost per absent session: breaks exact ties only
 _LESION_COLUMNS = ("subject", "session", "component", "volume_mm3", "centroid_x_mm",
                    "centroid_y_mm", "centroid_z_mm")
 
@@ -293,8 +296,8 @@ def _session_links(frontier: list[CompKey], current: list[CompKey],
         return []
     cost = np.full((len(frontier), len(current)), _BIG)
     for (i, f), (j, k) in itertools.product(enumerate(frontier), enumerate(current)):
-        if evidence[(f, k)].candidate:
-            cost[i, j] = 1.0 - evidence[(f, k)].score
+        if evidence[(f, k)].candidate:      # exact ties go to the more recent session
+            cost[i, j] = 1.0 - evidence[(f, k)].score + _RECENT * (t - 1 - f[0])
     rows, cols = linear_sum_assignment(cost)
     links = [Link(frontier[i], current[j], evidence[(frontier[i], current[j])], True)
              for i, j in zip(rows, cols) if cost[i, j] < _BIG]

@@ -8,11 +8,12 @@ sessions. Everything here follows the contract's rules behind ``longitudinal.tsv
   (then by smaller component number), equal to the values of the track images;
 - status: ``present`` at the first session and whenever found, ``new`` at a later first
   appearance, ``absent`` (volume 0) when not found, ``merged`` (volume n/a, ``merged_into``)
-  once the lesion has flowed into another one; no rows before a lesion first appears;
+  while the lesion has flowed into another one, ``present`` again once it separates (see
+  ``pipeline.identity``); no rows before a lesion first appears;
 - a lesion X is *merged* at session s into lesion Y when X has no component at s and a link
   runs from one of X's components into a component of Y at s (the survivor Y was chosen by the
   matcher as the parent larger at the previous session). The survivor lists the absorbed ids
-  in ``merged_from`` from the merge on; chains (X into Y, later Y into Z) resolve to Z.
+  in ``merged_from`` while X is merged; chains (X into Y, later Y into Z) resolve to Z.
 """
 from __future__ import annotations
 
