@@ -276,3 +276,26 @@ def test_merge_without_separation_is_unchanged():
     result = match_subject(scans, lesions)
     assert_identity_invariants(result)
     assert _statuses(result, 2) == [["1", "present"], ["2", "merged"], ["3", "merged"]]
+
+
+def test_two_lesions_merged_one_after_the_other_both_separate():
+    S = Sphere
+    scans, lesions, truth = make_series([
+        ("1", 0, [S("A", (-8, 0, 0), 6), S("B", (6, 0, 0), 4), S("C", (-8, 13, 0), 4)], ISO),
+        ("2", 30, [S("A", (-6, 0, 0), 7), S("B", (5, 0, 0), 4), S("C", (-8, 13, 0), 4)], ISO),
+        ("3", 60, [S("A", (-6, 2, 0), 8), S("B", (5, 0, 0), 4), S("C", (-8, 11, 0), 4.5)], ISO),
+        ("4", 90, [S("A", (-8, 0, 0), 6), S("B", (7, 0, 0), 3.5), S("C", (-8, 14, 0), 4)], ISO)])
+    assert lesions.groupby("session").size().tolist() == [3, 2, 1, 3]
+    result = match_subject(scans, lesions)
+    assert_identity_invariants(result)
+    ids = {name: _lesion(result, "1", c) for (s, c), names in truth.items() if s == "1"
+           for name in names}
+    for (s, c), names in truth.items():
+        if s == "4":
+            (name,) = names
+            assert _lesion(result, "4", c) == ids[name]
+    lon = result.longitudinal.set_index(["lesion", "session"])
+    assert lon.loc[ids["A"]].merged_from.tolist() == [
+        "", str(ids["B"]), ",".join(sorted(str(ids[n]) for n in "BC")), ""]
+    assert lon.loc[ids["B"]].status.tolist() == ["present", "merged", "merged", "present"]
+    assert lon.loc[ids["C"]].status.tolist() == ["present", "present", "merged", "present"]
