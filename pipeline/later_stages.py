@@ -17,8 +17,11 @@ from pipeline.volumes import LabelledScan
 
 
 def run_matching(stage: Stage1, out: Path, *, config: Config,
-                 corrections: pd.DataFrame | None) -> list[dict]:
-    """Stage 2 for every subject; writes matches.tsv, longitudinal.tsv, tracks/. Returns errors."""
+                 corrections: pd.DataFrame | None,
+                 corrections_path: Path | None = None) -> list[dict]:
+    """Stage 2 for every subject; writes matches.tsv, longitudinal.tsv, tracks/. Returns errors.
+
+    Errors about corrections name ``corrections_path`` (the file as given) and its line."""
     from pipeline import matching
     from pipeline.io import save_label_image
 
@@ -27,10 +30,12 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
     registrations: list[dict] = []
     groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
     known = {s.subject for s in stage.scans}
+    given = "" if corrections_path is None else str(corrections_path)
+    source = given or "corrections table"
     if corrections is not None:
         for index, row in corrections[~corrections.subject.isin(known)].iterrows():
-            errors.append({"subject": row.subject, "session": row.session, "path": "",
-                           "stage": "match", "reason": f"corrections.tsv line {index + 2}: "
+            errors.append({"subject": row.subject, "session": row.session, "path": given,
+                           "stage": "match", "reason": f"{source} line {index + 2}: "
                            f"subject {row.subject!r} is not in the input"})
     for subject in sorted(known):
         scans = stage.labelled(subject)
@@ -43,9 +48,10 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
                 if config.matching.register else None
             try:
                 result = matching.match_subject(scans, rows, settings=config.matching,
-                                                corrections=mine, transforms=transforms)
+                                                corrections=mine, transforms=transforms,
+                                                corrections_source=source)
             except InputError as exc:     # a bad correction: keep the automatic result
-                errors.append({"subject": subject, "session": exc.session or "", "path": "",
+                errors.append({"subject": subject, "session": exc.session or "", "path": given,
                                "stage": "match", "reason": f"{exc}; corrections of this subject "
                                "not applied"})
                 result = matching.match_subject(scans, rows, settings=config.matching,

@@ -8,8 +8,10 @@ assignment (``scipy.optimize.linear_sum_assignment``) on ``1 - score``, forbidde
 a large finite cost and dropped afterwards. A component left unassigned that overlaps (or holds
 the centroid of) a frontier component joins that lesion: a split. A component of the previous
 session left unassigned that overlaps a current component flows into it: a merge, whose survivor
-is the parent lesion larger at its last session. Ids, statuses and corrections follow
-``pipeline.tracks``.
+is the parent lesion larger at its last session. Lesion labels, the return of a merged lesion
+after its survivor separates again, and QA corrections (pins of a second pass, so that the
+sessions after a correction follow it) are ``pipeline.identity``'s; ids and statuses follow
+``pipeline.tracks``. Exact score ties go to the frontier component of the more recent session.
 
 Columns added: ``matches`` (``MATCHES_COLUMNS``), ``longitudinal`` (``LONGITUDINAL_COLUMNS``),
 ``assignment`` (``ASSIGNMENT_COLUMNS``). Research use only; see ``pipeline.DISCLAIMER``.
@@ -17,8 +19,7 @@ Columns added: ``matches`` (``MATCHES_COLUMNS``), ``longitudinal`` (``LONGITUDIN
 from __future__ import annotations
 
 import itertools
-from collections import defaultdict
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Hashable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -28,7 +29,8 @@ from scipy.optimize import linear_sum_assignment
 from pipeline.errors import InputError
 from pipeline.overlap import Evidence, ScanGeometry, pair_evidence, scan_geometry
 from pipeline.settings import MatchSettings
-from pipeline.tracks import (CompKey, Link, apply_corrections, link_relations, number_lesions,
+from pipeline.identity import LesionBook, correction_pins
+from pipeline.tracks import (CompKey, Link, link_relations, mark_corrected, number_lesions,
                              parse_corrections, track_image, track_rows)
 from pipeline.volumes import LabelledScan
 
@@ -65,7 +67,8 @@ MATCHES_COLUMNS: dict[str, dict] = {
     "review_reason": {"Description": "Why the link is flagged, comma separated: ambiguous "
                       "(a rival link to another lesion scores within ambiguity_margin), "
                       "small-overlap, large-jump (one-to-one links only), reappeared (after "
-                      "absent sessions), misregistered"},
+                      "absent sessions), misregistered, separated (into a part that took back "
+                      "the id of a lesion merged earlier)"},
     "gap": {"Description": "Sessions between session_from and session_to where the lesion was "
             "absent", "Units": "1"},
     "lesion_from": {"Description": "Lesion id of the earlier component"},
@@ -111,6 +114,7 @@ ASSIGNMENT_COLUMNS: dict[str, dict] = {
 COLUMNS: dict[str, dict] = {"matches.tsv": MATCHES_COLUMNS,
                             "longitudinal.tsv": LONGITUDINAL_COLUMNS}
 _BIG = 1e6
+_RECENT = 1e-9      # cost per absent session: breaks exact ties only
 _LESION_COLUMNS = ("subject", "session", "component", "volume_mm3", "centroid_x_mm",
                    "centroid_y_mm", "centroid_z_mm")
 
@@ -128,7 +132,8 @@ class MatchResult:
 def match_subject(scans: Sequence[LabelledScan], lesions: pd.DataFrame, *,
                   settings: MatchSettings = MatchSettings(),
                   corrections: pd.DataFrame | None = None,
-                  transforms: Mapping[str, np.ndarray] | None = None) -> MatchResult:
+                  transforms: Mapping[str, np.ndarray] | None = None,
+                  corrections_source: str = "corrections table") -> MatchResult:
     """Match one subject's lesion components across sessions into lesion tracks.
 
     Parameters
@@ -141,10 +146,13 @@ def match_subject(scans: Sequence[LabelledScan], lesions: pd.DataFrame, *,
     settings : MatchSettings
     corrections : pandas.DataFrame, optional
         ``corrections.tsv`` rows (``subject session component lesion``); lesion ids refer to the
-        automatic result, which is always computed first.
+        automatic result, which is always computed first. Each correction pins its component
+        in a second pass, so the sessions after it follow the corrected lesion.
     transforms : mapping of session -> (4, 4) ndarray, optional
         Maps each session's world (RAS+ mm) into the first session's world, e.g.
         ``pipeline.registration.rigid_register(...).matrix_ras``; missing sessions: identity.
+    corrections_source : str
+        How messages about bad corrections name the table (the file as given).
 
     Returns
     -------
@@ -173,23 +181,23 @@ def match_subject(scans: Sequence[LabelledScan], lesions: pd.DataFrame, *,
     volumes = {(i, c): v for i, g in enumerate(geoms) for c, v in g.volumes.items()}
     ids = number_lesions(step.membership, volumes)
     automatic = {key: ids[label] for key, label in step.membership.items()}
-    membership, links, named = automatic, step.links, {}
+    membership, final, named = automatic, step, {}
     if corrections is not None and len(corrections):
         named = parse_corrections(corrections, subject=subject,
                                   sessions=[s.session for s in ordered],
-                                  components=set(automatic), lesion_ids=set(ids.values()))
-
-        def evidence_of(src: CompKey, dst: CompKey) -> Evidence:
-            return step.pairs.get((src, dst)) or pair_evidence(
-                geoms[src[0]], src[1], geoms[dst[0]], dst[1], settings=settings)
-
-        labels, links = apply_corrections(named, automatic, links, evidence_of)
-        numbers = number_lesions(labels, volumes)
-        membership = {key: numbers[label] for key, label in labels.items()}
-    links = sorted(links, key=lambda link: (link.dst, link.src))
+                                  components=set(automatic), lesion_ids=set(ids.values()),
+                                  source=corrections_source)
+        # the corrections are pins of a second pass: later sessions follow the corrected lesions
+        final = _link_sessions(geoms, settings, pins=correction_pins(named, automatic, step.links),
+                               suggest=lambda key: ("auto", automatic[key]))
+        numbers = number_lesions(final.membership, volumes)
+        membership = {key: numbers[label] for key, label in final.membership.items()}
+    links = sorted(mark_corrected(final.links, step.links, named, automatic),
+                   key=lambda link: (link.dst, link.src))
     shifts = _session_shifts(geoms, links, settings)
     warnings = _warnings(ordered, shifts, step.unmatched, settings)
-    matches = _matches_table(ordered, links, membership, step.pairs, shifts, settings)
+    matches = _matches_table(ordered, links, membership, final.pairs, shifts, settings,
+                             revived=final.revived)
     longitudinal = _longitudinal_table(ordered, membership, volumes, links, named, matches)
     assignment = pd.DataFrame(
         [{"subject": subject, "session": ordered[key[0]].session, "component": key[1],
@@ -247,49 +255,39 @@ def _transform(transforms: Mapping[str, np.ndarray] | None, scan: LabelledScan) 
 # ---- automatic linking -------------------------------------------------------------------------
 @dataclass(frozen=True)
 class _Step:
-    membership: dict[CompKey, int]
+    membership: dict[CompKey, Hashable]
     links: list[Link]
     pairs: dict[tuple[CompKey, CompKey], Evidence]
     unmatched: list[tuple[int, int, int]]   # (session index, components, frontier components)
+    revived: frozenset[CompKey] = frozenset()   # parts that took back a merged lesion's id
 
 
-def _link_sessions(geoms: list[ScanGeometry], settings: MatchSettings) -> _Step:
-    lesion_of: dict[CompKey, int] = {}
-    last_seen: dict[int, int] = {}
-    last_comps: dict[int, list[CompKey]] = {}
-    dead: set[int] = set()
-    keys = itertools.count(1)
+def _link_sessions(geoms: list[ScanGeometry], settings: MatchSettings, *,
+                   pins: Mapping[CompKey, Hashable] | None = None,
+                   suggest: Callable[[CompKey], Hashable] | None = None) -> _Step:
+    """Links and lesion labels session by session; labels follow ``pipeline.identity``."""
+    book = LesionBook({(t, c): v for t, g in enumerate(geoms) for c, v in g.volumes.items()},
+                      pins=pins, suggest=suggest)
     links: list[Link] = []
     pairs: dict[tuple[CompKey, CompKey], Evidence] = {}
     unmatched = []
+
+    def evidence_of(src: CompKey, dst: CompKey) -> Evidence:
+        return pairs.get((src, dst)) or pair_evidence(geoms[src[0]], src[1], geoms[dst[0]],
+                                                      dst[1], settings=settings)
+
     for t, geom in enumerate(geoms):
         current = [(t, c) for c in sorted(geom.voxels)]
-        frontier = [key for lesion in sorted(last_seen) if lesion not in dead
-                    and t - last_seen[lesion] - 1 <= settings.max_gap
-                    for key in last_comps[lesion]]
+        frontier = book.frontier(t, max_gap=settings.max_gap)
         evidence = {(f, k): pair_evidence(geoms[f[0]], f[1], geom, k[1], settings=settings)
                     for f in frontier for k in current}
         pairs.update(evidence)
-        new = _session_links(frontier, current, evidence, t)
+        new = _session_links(frontier, current, book.constrain(evidence), t)
         if not new and len(current) >= settings.misregistration_min_pairs \
                 and len(frontier) >= settings.misregistration_min_pairs:
             unmatched.append((t, len(current), len(frontier)))
-        last_volume = {lesion: sum(geoms[k[0]].volumes[k[1]] for k in comps)
-                       for lesion, comps in last_comps.items()}
-        incoming: dict[CompKey, set[int]] = defaultdict(set)
-        for link in new:
-            incoming[link.dst].add(lesion_of[link.src])
-        for key in current:
-            parents = incoming[key]
-            lesion_of[key] = (next(keys) if not parents else
-                              max(parents, key=lambda lab: (last_volume[lab], -lab)))
-        present = {lesion_of[key] for key in current}
-        dead |= {lesion_of[link.src] for link in new if lesion_of[link.src] not in present}
-        for lesion in present:
-            last_seen[lesion] = t
-            last_comps[lesion] = [key for key in current if lesion_of[key] == lesion]
-        links.extend(new)
-    return _Step(lesion_of, links, pairs, unmatched)
+        links.extend(book.settle(t, current, new, evidence_of))
+    return _Step(book.lesion_of, links, pairs, unmatched, frozenset(book.revived))
 
 
 def _session_links(frontier: list[CompKey], current: list[CompKey],
@@ -298,8 +296,8 @@ def _session_links(frontier: list[CompKey], current: list[CompKey],
         return []
     cost = np.full((len(frontier), len(current)), _BIG)
     for (i, f), (j, k) in itertools.product(enumerate(frontier), enumerate(current)):
-        if evidence[(f, k)].candidate:
-            cost[i, j] = 1.0 - evidence[(f, k)].score
+        if evidence[(f, k)].candidate:      # exact ties go to the more recent session
+            cost[i, j] = 1.0 - evidence[(f, k)].score + _RECENT * (t - 1 - f[0])
     rows, cols = linear_sum_assignment(cost)
     links = [Link(frontier[i], current[j], evidence[(frontier[i], current[j])], True)
              for i, j in zip(rows, cols) if cost[i, j] < _BIG]
@@ -399,12 +397,15 @@ def _review(link: Link, membership: Mapping[CompKey, int],
 def _matches_table(ordered: list[LabelledScan], links: Sequence[Link],
                    membership: Mapping[CompKey, int],
                    pairs: Mapping[tuple[CompKey, CompKey], Evidence], shifts: list[_Shift],
-                   settings: MatchSettings) -> pd.DataFrame:
+                   settings: MatchSettings, *, revived: frozenset[CompKey] = frozenset()
+                   ) -> pd.DataFrame:
     rows = []
     linked = {(link.src, link.dst) for link in links}
     for link, relation in zip(links, link_relations(links)):
         ev, shift = link.evidence, shifts[link.dst[0]]
         confidence, reasons = _review(link, membership, pairs, linked, shift.flagged, settings)
+        if link.dst in revived and not link.corrected:
+            reasons = reasons + ["separated"]
         rows.append({
             "subject": ordered[0].subject, "session_from": ordered[link.src[0]].session,
             "component_from": link.src[1], "session_to": ordered[link.dst[0]].session,

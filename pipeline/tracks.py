@@ -8,16 +8,17 @@ sessions. Everything here follows the contract's rules behind ``longitudinal.tsv
   (then by smaller component number), equal to the values of the track images;
 - status: ``present`` at the first session and whenever found, ``new`` at a later first
   appearance, ``absent`` (volume 0) when not found, ``merged`` (volume n/a, ``merged_into``)
-  once the lesion has flowed into another one; no rows before a lesion first appears;
+  while the lesion has flowed into another one, ``present`` again once it separates (see
+  ``pipeline.identity``); no rows before a lesion first appears;
 - a lesion X is *merged* at session s into lesion Y when X has no component at s and a link
   runs from one of X's components into a component of Y at s (the survivor Y was chosen by the
   matcher as the parent larger at the previous session). The survivor lists the absorbed ids
-  in ``merged_from`` from the merge on; chains (X into Y, later Y into Z) resolve to Z.
+  in ``merged_from`` while X is merged; chains (X into Y, later Y into Z) resolve to Z.
 """
 from __future__ import annotations
 
 from collections import Counter, defaultdict
-from collections.abc import Callable, Hashable, Mapping, Sequence
+from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -175,11 +176,13 @@ def _session_rows(s: int, lesions: list[int], present: set[int], into: Mapping[i
 # QA corrections
 # ---------------------------------------------------------------------------------------------
 def parse_corrections(corrections: pd.DataFrame, *, subject: str, sessions: Sequence[str],
-                      components: set[CompKey], lesion_ids: set[int]) -> dict[CompKey, int | str]:
+                      components: set[CompKey], lesion_ids: set[int],
+                      source: str = "corrections table") -> dict[CompKey, int | str]:
     """Validate the ``corrections.tsv`` rows of one subject: component -> lesion id or ``new``.
 
-    Rows of other subjects are ignored (the caller checks that every subject exists). Line
-    numbers in messages assume the table's index counts data rows from 0 (as ``read_table``).
+    Rows of other subjects are ignored (the caller checks that every subject exists). Messages
+    name ``source`` (the file as given) and the line, assuming the table's index counts data
+    rows from 0 (as ``read_table``) below one header line.
 
     Examples
     --------
@@ -197,7 +200,7 @@ def parse_corrections(corrections: pd.DataFrame, *, subject: str, sessions: Sequ
     for index, row in corrections.iterrows():
         if str(row["subject"]).strip() != subject:
             continue
-        where = f"corrections.tsv line {index + 2 if isinstance(index, int) else index}"
+        where = f"{source} line {index + 2 if isinstance(index, int) else index}"
         key = _correction_key(row, where, subject, sessions, components)
         value = _correction_value(row["lesion"], where, subject, lesion_ids)
         if out.get(key, value) != value:
@@ -241,51 +244,31 @@ def _correction_value(value: object, where: str, subject: str, lesion_ids: set[i
     return lesion
 
 
-def apply_corrections(named: Mapping[CompKey, int | str], automatic: Mapping[CompKey, int],
-                      links: Sequence[Link],
-                      evidence_of: Callable[[CompKey, CompKey], Evidence]
-                      ) -> tuple[dict[CompKey, Hashable], list[Link]]:
-    """Honour corrections over the automatic result; only links of named components change.
+def mark_corrected(links: Sequence[Link], automatic_links: Sequence[Link],
+                   named: Mapping[CompKey, int | str], automatic: Mapping[CompKey, int]
+                   ) -> list[Link]:
+    """``links`` with ``corrected`` set on those a QA correction added or changed.
 
-    A named component takes the named lesion (an id of ``automatic``), or, with ``new``, a
-    lesion of its own; ``new`` components that were linked to each other stay one lesion. A link
-    touching a named component is dropped when it joined one lesion before and now joins two;
-    it is kept (marked corrected) when it now joins one lesion. A component put into lesion L
-    with no remaining link from L gets a corrected link from L's nearest earlier session (the
-    best-scoring component there). Returns the corrected membership (hashable labels; number
-    them with ``number_lesions``) and the links.
+    A link is corrected when the automatic result had no such link, or when one of its ends is
+    named with a lesion other than its automatic one (``new`` always counts).
+
+    Examples
+    --------
+    >>> e = Evidence(1.0, 0.0, True, 0.0, 1.0, True)
+    >>> auto = [Link((0, 1), (1, 1), e, True), Link((1, 1), (2, 1), e, True)]
+    >>> now = [Link((1, 1), (2, 1), e, True), Link((0, 1), (2, 2), e, False)]
+    >>> [link.corrected for link in mark_corrected(now, auto, {(1, 1): "new"},
+    ...                                            {(0, 1): 1, (1, 1): 1, (2, 1): 1, (2, 2): 2})]
+    [True, True]
+    >>> [link.corrected for link in mark_corrected(now[:1], auto, {(1, 1): 1}, {(1, 1): 1})]
+    [False]
     """
-    group = {key: key for key, value in named.items() if value == "new"}
-
-    def root(key: CompKey) -> CompKey:
-        while group[key] != key:
-            key = group[key]
-        return key
-
-    for link in links:
-        if link.src in group and link.dst in group:
-            group[root(link.dst)] = root(link.src)
-    label: dict[CompKey, Hashable] = {key: ("auto", lesion) for key, lesion in automatic.items()}
-    for key, value in named.items():
-        label[key] = ("new", root(key)) if value == "new" else ("auto", value)
-    kept = []
-    for link in links:
-        before = automatic[link.src] == automatic[link.dst]
-        after = label[link.src] == label[link.dst]
-        if before and not after:
-            continue
-        changed = after and not before and (link.src in named or link.dst in named)
-        kept.append(replace(link, corrected=link.corrected or changed))
-    for key in sorted(k for k, v in named.items() if v != "new"):
-        if any(link.dst == key and label[link.src] == label[key] for link in kept):
-            continue
-        earlier = [k for k in label if label[k] == label[key] and k[0] < key[0]]
-        if earlier:
-            last = max(k[0] for k in earlier)
-            best = max((k for k in earlier if k[0] == last),
-                       key=lambda k: (evidence_of(k, key).score, -k[1]))
-            kept.append(Link(best, key, evidence_of(best, key), assigned=False, corrected=True))
-    return label, kept
+    if not named:
+        return list(links)
+    before = {(link.src, link.dst) for link in automatic_links}
+    changed = {key for key, value in named.items() if value == "new" or value != automatic[key]}
+    return [replace(link, corrected=link.corrected or (link.src, link.dst) not in before
+                    or link.src in changed or link.dst in changed) for link in links]
 
 
 # ---------------------------------------------------------------------------------------------

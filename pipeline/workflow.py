@@ -234,13 +234,15 @@ def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | No
                   corrections: pd.DataFrame | None, corrections_path: Path | None, run: str
                   ) -> tuple[list[dict], dict[str, Path | None]]:
     """Stages 2 and 3 after stage 1; returns new error rows and files used."""
-    errors = _match_stage(stage, out, config=config, corrections=corrections, run=run)
+    errors = _match_stage(stage, out, config=config, corrections=corrections,
+                          corrections_path=corrections_path, run=run)
     _fit_stage(out, config=config, events=_events(events, stage, errors, out), run=run)
     return errors, {"events": events, "corrections": corrections_path}
 
 
 def _match_stage(stage: Stage1, out: Path, *, config: Config,
-                 corrections: pd.DataFrame | None, run: str) -> list[dict]:
+                 corrections: pd.DataFrame | None, corrections_path: Path | None,
+                 run: str) -> list[dict]:
     """Stage 2, with the track images and registrations of an earlier match removed first (a
     smaller input must not leave the images of subjects it no longer holds)."""
     from pipeline.later_stages import run_matching
@@ -250,7 +252,8 @@ def _match_stage(stage: Stage1, out: Path, *, config: Config,
             if path.is_file() and path.name.endswith((".nii", ".nii.gz")):
                 path.unlink()
     (out / "registration.tsv").unlink(missing_ok=True)
-    errors = run_matching(stage, out, config=config, corrections=corrections)
+    errors = run_matching(stage, out, config=config, corrections=corrections,
+                          corrections_path=corrections_path)
     run_state.stage_done(out, run, "match")
     return errors
 
@@ -361,7 +364,8 @@ def match_only(out: Path, *, config: Config, corrections: Path | None = None) ->
                 f"{provenance['files']['corrections']['path']})")
         run = run_state.begin(out, "match", ("match",))
         had_report = drop_report(out)
-        errors = _match_stage(stage, out, config=config, corrections=table, run=run)
+        errors = _match_stage(stage, out, config=config, corrections=table,
+                              corrections_path=corrections, run=run)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
         update_provenance(out, config=config, sections=("matching",),

@@ -434,6 +434,23 @@ def test_corrections_naming_unknown_lesion(two_subjects):
     assert_good_subject_intact(out)
 
 
+def test_correction_errors_name_the_file_given(two_subjects):
+    # Reference: HELPER rules / contract: bad input gets a one-line error naming the file and the
+    # reason, and errors.tsv lists the path (common practice: the path as the user gave it).
+    folder, manifest = two_subjects
+    fixes = folder / "qa-fixes.tsv"
+    fixes.write_text("subject\tsession\tcomponent\tlesion\nH\t2\t1\t99\nZ\t1\t1\t1\n")
+    out = folder / "out"
+    code, err = call(["run", manifest, "-o", out, "--corrections", fixes, "-q"])
+    assert code == 1
+    errors = errors_of(out).query("stage == 'match'")
+    assert sorted(errors.subject) == ["H", "Z"]
+    assert (errors.path == str(fixes)).all()
+    assert errors.reason.str.startswith(f"{fixes} line ").all()
+    assert "corrections.tsv" not in err
+    assert_good_subject_intact(out)
+
+
 def test_label_with_path_separator_is_refused_and_nothing_escapes_out(good_folder):
     # Reference: contract (outputs are written in OUT; file names are built from the labels);
     # BIDS labels are alphanumeric (BIDS specification, entities).

@@ -149,14 +149,18 @@ def test_correction_with_the_automatic_lesion_changes_nothing():
 
 
 @pytest.mark.parametrize("row, message", [
-    (("01", "7", 1, 1), "corrections.tsv line 2: subject 01 has no session '7'"),
-    (("01", "2", 9, 1), "corrections.tsv line 2: subject 01 session 2 has no component 9"),
-    (("01", "2", 1, 8), "corrections.tsv line 2: subject 01 has no lesion 8"),
-    (("01", "2", 1, "maybe"), "has no lesion 'maybe'"),
+    (("01", "7", 1, 1), "qa/fixes.tsv line 2: subject 01 has no session '7'"),
+    (("01", "2", 9, 1), "qa/fixes.tsv line 2: subject 01 session 2 has no component 9"),
+    (("01", "2", 1, 8), "qa/fixes.tsv line 2: subject 01 has no lesion 8"),
+    (("01", "2", 1, "maybe"), "qa/fixes.tsv line 2: subject 01 has no lesion 'maybe'"),
 ])
 def test_unknown_correction_ids_are_input_errors(row, message):
+    # The message names the table as the caller gave it, whatever the file is called.
     scans, lesions, _ = _three_lesions()
     with pytest.raises(InputError, match=message):
+        match_subject(scans, lesions, corrections=_corrections(row),
+                      corrections_source="qa/fixes.tsv")
+    with pytest.raises(InputError, match="^corrections table line 2: "):
         match_subject(scans, lesions, corrections=_corrections(row))
 
 
