@@ -142,9 +142,10 @@ def _forecast(law: Law, t: np.ndarray, theta: np.ndarray, df: int, scale: np.nda
         var = np.einsum("mp,mpq,mq->m", g, cov, g) + scale ** 2
     level = 0.5 * (1.0 + settings.confidence)
     q = stats.norm.ppf(level) if known else (stats.t.ppf(level, df) if df > 0 else np.nan)
-    half = q * np.sqrt(var)
-    return {"forecast_mm3": np.exp(log_f), "forecast_low_mm3": np.exp(log_f - half),
-            "forecast_high_mm3": np.exp(log_f + half)}
+    with np.errstate(all="ignore"):      # overflow -> inf, made n/a with a note later
+        half = q * np.sqrt(var)
+        return {"forecast_mm3": np.exp(log_f), "forecast_low_mm3": np.exp(log_f - half),
+                "forecast_high_mm3": np.exp(log_f + half)}
 
 
 def fit_series(law: Law, t: np.ndarray, y: np.ndarray, *,
