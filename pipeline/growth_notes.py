@@ -182,7 +182,21 @@ def _piece_frame(law: Law, n: int, ids: np.ndarray, day: np.ndarray, logv: np.nd
     frame["singularity_day"] = frame["day_start"] + frame.pop("singularity_day_rel")
     frame["note"] = [[] for _ in range(m)]
     _fit_notes(frame, law, res, settings)
+    if law.name == "power":
+        _flat_series(frame, logv)
     return frame
+
+
+def _flat_series(frame: pd.DataFrame, logv: np.ndarray) -> None:
+    """Same volume at every fitted session: k = 0 fits at any beta, so beta is n/a (a value at
+    a bound would pass for a finding, e.g. as a marker)."""
+    flat = np.ptp(logv, axis=1) == 0
+    if not flat.any():
+        return
+    frame.loc[flat, ["beta", "beta_ci_low", "beta_ci_high", "beta_boot_low",
+                     "beta_boot_high"]] = np.nan
+    text = "same volume at every fitted session: any beta fits (k = 0), so beta is n/a"
+    frame["note"] = [[text] if f else notes for f, notes in zip(flat, frame["note"])]
 
 
 def _fit_notes(frame: pd.DataFrame, law: Law, res: dict, settings: FitSettings) -> None:

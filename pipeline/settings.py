@@ -103,6 +103,10 @@ class FitSettings:
     seed: int = 0                     # random seed of the bootstrap
 
     def __post_init__(self) -> None:
+        numbers = {k: v for k, v in vars(self).items() if isinstance(v, float)}
+        numbers.update({f"beta_bounds[{i}]": float(v) for i, v in enumerate(self.beta_bounds)})
+        bad = [k for k, v in numbers.items() if v != v or v in (float("inf"), -float("inf"))]
+        _require(not bad, f"{', '.join(bad)} must be a finite number")
         _require(len(self.models) > 0, "models must name at least one law")
         known = ("power", "exponential", "gompertz", "logistic", "surface")
         unknown = [m for m in self.models if m not in known]

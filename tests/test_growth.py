@@ -281,7 +281,7 @@ def test_implausible_forecast_is_flagged():
 
 @pytest.mark.parametrize("horizon", [float("inf"), float("nan"), 3650.0, -1.0])
 def test_forecast_horizon_is_bounded(horizon):
-    with pytest.raises(ValueError, match="forecast_days must be between 0 and 1826"):
+    with pytest.raises(ValueError, match="forecast_days must be (between 0 and 1826|a finite)"):
         FitSettings(forecast_days=horizon)
 
 
@@ -302,3 +302,20 @@ def test_counts_print_as_integers_also_when_nothing_is_fitted(tmp_path):
     write_table(unfitted, tmp_path / "unfitted.tsv")
     header, line = (tmp_path / "unfitted.tsv").read_text().splitlines()
     assert dict(zip(header.split("\t"), line.split("\t")))["n_points"] == "1"
+
+
+def test_beta_of_a_lesion_without_change_is_n_a():
+    # Reference: closed form V = V0 (1 + (1 - beta) k t)^(1/(1-beta)) (REFERENCES 1.1) is
+    # constant for k = 0 whatever beta, so beta is not identifiable from a constant series.
+    fits = fit_lesions(_phased([0, 30, 60, 90, 120], [500.0] * 5)).set_index("model")
+    assert np.isnan(fits.loc["power", "beta"]) and np.isnan(fits.loc["power", "beta_ci_low"])
+    assert "any beta fits" in fits.loc["power", "note"]
+    assert fits.loc["exponential", "best"]                  # exact, fewest parameters
+
+
+@pytest.mark.parametrize("field", ["measurement_error", "max_rate_per_day", "detection_limit_mm3"])
+def test_non_finite_fit_settings_are_refused(field):
+    with pytest.raises(ValueError, match=f"{field} must be a finite number"):
+        FitSettings(**{field: float("inf")})
+    with pytest.raises(ValueError, match="beta_bounds"):
+        FitSettings(beta_bounds=(-float("inf"), 3.0))
