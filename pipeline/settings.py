@@ -98,7 +98,7 @@ class FitSettings:
     from_nadir: bool = True           # after an event, fit from the phase's nadir on (regrowth)
     fit_merged_sum: bool = False      # fit a survivor's rows after a merge (summed volume)
     detection_limit_mm3: float = 0.0  # volumes in (0, this] are left out (mm^3)
-    forecast_days: float = 90.0       # forecast horizon after the last fitted session (days)
+    forecast_days: float = 90.0       # horizon after the last fitted session (days, 0-1826)
     bootstrap: int = 0                # parametric-bootstrap repeats for beta (0 = off)
     seed: int = 0                     # random seed of the bootstrap
 
