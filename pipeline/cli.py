@@ -40,7 +40,7 @@ DescOpt = typer.Option(None, "--desc",
                        help="BIDS input: pick desc-<LABEL> masks when a session has "
                        "several (default: lesion).")
 ForecastOpt = typer.Option(None, "--forecast-days", help="Forecast horizon after the last "
-                           "session, in days.")
+                           "session, in days (0 to 1826).")
 
 
 def _line(exc: Exception) -> str:

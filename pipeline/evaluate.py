@@ -204,6 +204,29 @@ def _lesion_ids(column: pd.Series, table: str) -> pd.Series:
     return numbers.astype("int64")
 
 
+def unknown_subjects(outcomes: pd.DataFrame, known: set[str], *, name: str = "outcomes"
+                     ) -> tuple[pd.DataFrame, list[dict]]:
+    """Outcome rows whose subject is not in the run, split off as ``errors.tsv`` rows.
+
+    Returns the outcome rows of known subjects and one error row per refused row (its table row
+    number counts the header as row 1).
+
+    >>> rows = pd.DataFrame({"subject": ["a", "zz"], "lesion": [1, 1], "outcome": [0, 1]})
+    >>> kept, errors = unknown_subjects(rows, {"a"})
+    >>> len(kept), errors[0]["reason"]
+    (1, "outcomes row 3: subject 'zz' is not in the run; row ignored")
+    """
+    if "subject" not in outcomes.columns:
+        return outcomes, []
+    unknown = ~outcomes["subject"].astype(str).isin(known)
+    errors = [{"subject": str(subject), "session": "", "path": name, "stage": "evaluate",
+               "reason": f"{name} row {i + 2}: subject {str(subject)!r} is not in the run; "
+                         "row ignored"}
+              for i, subject in zip(np.flatnonzero(unknown.to_numpy()),
+                                    outcomes.loc[unknown, "subject"])]
+    return outcomes[~unknown.to_numpy()], errors
+
+
 def _labelled(outcomes: pd.DataFrame, positive: object) -> tuple[pd.DataFrame, str, int]:
     """(subject, lesion, is_positive) rows, the positive value's name, rows without outcome."""
     missing = [c for c in ("subject", "lesion", "outcome") if c not in outcomes.columns]

@@ -52,7 +52,8 @@ COLUMNS: dict[str, dict] = {
     "model": {"Description": "Growth law with the shared exponent: dV/dt = alpha * V^beta",
               "Levels": {"power": "power law (generalized von Bertalanffy), beta shared"}},
     "n_lesions": {"Description": "Lesions in the fit (each with at least 3 fitted sessions in "
-                                 "the phase)", "Units": "lesions"},
+                                 "the phase; lesions with the same volume at every fitted session "
+                                 "are left out and counted in note)", "Units": "lesions"},
     "n_points": {"Description": "Fitted (lesion, session) volumes", "Units": "volumes"},
     "beta": {"Description": "Shared growth exponent beta of dV/dt = alpha * V^beta",
              "Units": "1"},
@@ -447,6 +448,19 @@ def _qualifying(rows: pd.DataFrame, min_sessions: int) -> tuple[pd.DataFrame, in
     return rows[keep], len(short)
 
 
+def _without_change(rows: pd.DataFrame) -> tuple[pd.DataFrame, int]:
+    """Drop lesions whose volume is identical at every fitted session; count them.
+
+    Such a series is fitted exactly by k = 0 at every beta: it says nothing about beta, and its
+    zero residuals would add degrees of freedom without residual, shrinking the pooled error
+    variance and so the interval of beta (with a configured error it changes nothing).
+    """
+    volume = rows.groupby(["subject", "lesion"], sort=False)["volume_mm3"]
+    flat = (volume.transform("max") == volume.transform("min")).to_numpy()
+    dropped = rows.loc[flat, ["subject", "lesion"]].drop_duplicates()
+    return rows[~flat], len(dropped)
+
+
 def _one_blas_thread() -> AbstractContextManager:
     """One BLAS thread while solving: the solver only calls BLAS on long vectors, where a
     second thread competing for a busy core made fits many times slower (measured in
@@ -483,7 +497,10 @@ def fit_groups(phased: pd.DataFrame, *, settings: FitSettings = _DEFAULT_SETTING
 
     Notes
     -----
-    Time runs from each lesion's first fitted day in the phase, so V0 is the fitted volume on that
+    A lesion whose volume is the same at every fitted session is left out (with a note): it is
+    fitted exactly at any beta, so it carries no information on beta, and its zero residuals
+    would shrink the pooled error estimate. Time runs from each lesion's first fitted day in
+    the phase, so V0 is the fitted volume on that
     day and k the initial specific growth rate (per day). A fit in which a lesion's finite-time
     singularity (beta > 1) would fall inside its window is reported as ``failed``. Lesions of one
     subject are treated as independent given the law; beta's interval ignores that clustering.
@@ -508,8 +525,13 @@ def fit_groups(phased: pd.DataFrame, *, settings: FitSettings = _DEFAULT_SETTING
     out = []
     for (group, phase), part in rows.groupby(["group", "phase"], sort=True):
         kept, short = _qualifying(part, min_sessions)
+        kept, flat = _without_change(kept)
         notes = [(f"{short} lesion(s) with fewer than {min_sessions} fitted sessions (or all "
                   "on one day) left out")] if short else []
+        if flat:
+            notes.append(f"{flat} lesion(s) with the same volume at every fitted session left "
+                         "out: no information on beta, and their zero residuals would narrow "
+                         "the interval")
         row = {"group": group, "phase": phase, "model": "power", "confidence": options.confidence,
                "n_lesions": 0, "n_points": 0, "n_subjects": 0}
         if kept.empty:

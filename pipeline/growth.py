@@ -19,7 +19,11 @@ the volume unit and stable through beta = 1 (:mod:`pipeline.laws`).
   parametric bootstrap (``FitSettings.bootstrap`` repeats) adds a percentile interval.
 - AICc (Hurvich and Tsai 1989) with sigma estimated (k = p + 1) or known (k = p); Akaike weights
   (Burnham and Anderson 2002) over the laws of a lesion and phase; ``best`` = lowest AICc, or,
-  when AICc is undefined for every law (few sessions), the law with fewest parameters.
+  when AICc is undefined for every law (few sessions), the law with fewest parameters. A law
+  that fits exactly although it has residual dof (zero residual: AICc tends to -infinity) is
+  preferred to every law with a positive residual (fewest parameters among such laws; AICc and
+  Akaike weights n/a); the best row's note says which rule chose it and names the laws that had
+  no AICc to compare. A series with the same volume at every session has beta n/a (any fits).
 - A failed fit is a row with status ``failed`` and the reason in ``note``; it never stops a batch.
 
 Derived figures: ``doubling_time_days`` = days for the fitted curve to double from the fitted
@@ -27,7 +31,8 @@ volume at the last fitted session (power law: DT(V) = V^(1-b)(2^(1-b) - 1)/(alph
 REFERENCES 1.1); ``sgr_per_day`` = ln(V_end/V_start)/(t_end - t_start) on the fitted curve
 (specific growth rate, Mehrara et al. Cancer Res 2007;67:3970-3975; DT = ln2/SGR for exponential
 growth); ``forecast_mm3`` at ``forecast_day`` = last fitted day + ``forecast_days`` with a
-prediction interval (delta method plus the measurement error, t or normal quantile).
+prediction interval (delta method plus the measurement error, t or normal quantile); a forecast
+that overflows is n/a with a note, one above ``growth_notes.IMPLAUSIBLE_MM3`` is flagged.
 """
 from __future__ import annotations
 
@@ -142,9 +147,10 @@ def _forecast(law: Law, t: np.ndarray, theta: np.ndarray, df: int, scale: np.nda
         var = np.einsum("mp,mpq,mq->m", g, cov, g) + scale ** 2
     level = 0.5 * (1.0 + settings.confidence)
     q = stats.norm.ppf(level) if known else (stats.t.ppf(level, df) if df > 0 else np.nan)
-    half = q * np.sqrt(var)
-    return {"forecast_mm3": np.exp(log_f), "forecast_low_mm3": np.exp(log_f - half),
-            "forecast_high_mm3": np.exp(log_f + half)}
+    with np.errstate(all="ignore"):      # overflow -> inf, made n/a with a note later
+        half = q * np.sqrt(var)
+        return {"forecast_mm3": np.exp(log_f), "forecast_low_mm3": np.exp(log_f - half),
+                "forecast_high_mm3": np.exp(log_f + half)}
 
 
 def fit_series(law: Law, t: np.ndarray, y: np.ndarray, *,

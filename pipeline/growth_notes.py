@@ -44,11 +44,15 @@ COLUMNS: dict[str, dict] = {
     "beta_ci_high": {"Description": "Upper end of the profile-likelihood interval for beta.",
                      "Units": "n/a"},
     "aicc": {"Description": "Corrected Akaike information criterion on log-volume residuals "
-                            "(Hurvich and Tsai 1989); n/a when undefined (n <= k + 1).",
+                            "(Hurvich and Tsai 1989); n/a when undefined (n <= k + 1, or a zero "
+                            "residual: sigma_log below 1e-8).",
              "Units": "n/a"},
     "note": {"Description": "Why a value is missing, what was left out, warnings.", "Units": "n/a"},
-    "best": {"Description": "True on the row with the lowest AICc of its lesion and phase (fewest "
-                            "parameters when AICc is undefined for every law).", "Units": "n/a"},
+    "best": {"Description": "True on the row with the lowest AICc of its lesion and phase; a law "
+                            "that fits exactly with residual dof (zero residual, AICc -infinity) "
+                            "comes first, fewest parameters among such laws; fewest parameters "
+                            "when AICc is undefined for every law. The note says which.",
+             "Units": "n/a"},
     "akaike_weight": {"Description": "Akaike weight among the laws of this lesion and phase with "
                                      "a defined AICc (Burnham and Anderson 2002).", "Units": "n/a"},
     "k_per_day": {"Description": "Initial specific growth rate (dV/dt)/V at day_start "
@@ -178,7 +182,21 @@ def _piece_frame(law: Law, n: int, ids: np.ndarray, day: np.ndarray, logv: np.nd
     frame["singularity_day"] = frame["day_start"] + frame.pop("singularity_day_rel")
     frame["note"] = [[] for _ in range(m)]
     _fit_notes(frame, law, res, settings)
+    if law.name == "power":
+        _flat_series(frame, logv)
     return frame
+
+
+def _flat_series(frame: pd.DataFrame, logv: np.ndarray) -> None:
+    """Same volume at every fitted session: k = 0 fits at any beta, so beta is n/a (a value at
+    a bound would pass for a finding, e.g. as a marker)."""
+    flat = np.ptp(logv, axis=1) == 0
+    if not flat.any():
+        return
+    frame.loc[flat, ["beta", "beta_ci_low", "beta_ci_high", "beta_boot_low",
+                     "beta_boot_high"]] = np.nan
+    text = "same volume at every fitted session: any beta fits (k = 0), so beta is n/a"
+    frame["note"] = [[text] if f else notes for f, notes in zip(flat, frame["note"])]
 
 
 def _fit_notes(frame: pd.DataFrame, law: Law, res: dict, settings: FitSettings) -> None:
@@ -205,8 +223,27 @@ def _fit_notes(frame: pd.DataFrame, law: Law, res: dict, settings: FitSettings) 
                          (high - low > settings.max_beta_ci_width))
         add(wide, "beta not pinned down by this lesion's data: prefer the group fit's beta")
     sing = frame["singularity_day"].to_numpy()
-    add(np.isfinite(sing) & (sing <= frame["forecast_day"].to_numpy()),
-        "forecast_day is past the curve's singularity: no forecast")
+    past = np.isfinite(sing) & (sing <= frame["forecast_day"].to_numpy())
+    add(past, "forecast_day is past the curve's singularity: no forecast")
+    _forecast_notes(frame, add, past | (status == "failed"))
+
+
+#: Forecasts above this volume are flagged: more than an adult skull holds (about 1.2-1.7 litres,
+#: from memory), so the extrapolated law has broken down (mm^3).
+IMPLAUSIBLE_MM3 = 2.0e6
+
+
+def _forecast_notes(frame: pd.DataFrame, add, quiet: np.ndarray) -> None:
+    """Overflowing forecasts become n/a with a note; implausibly large ones get a note."""
+    names = ["forecast_mm3", "forecast_low_mm3", "forecast_high_mm3"]
+    values = frame[names].to_numpy(float)
+    overflow = np.isinf(values).any(1) | (values > np.finfo(float).max / 10).any(1)
+    frame.loc[overflow, names] = np.nan
+    add(overflow & ~quiet, "forecast overflows the number range (the fitted curve grows without "
+                           "bound over forecast_days): forecast n/a")
+    big = np.nan_to_num(frame[names].to_numpy(float), nan=0.0).max(1) > IMPLAUSIBLE_MM3
+    add(big & ~quiet, f"forecast above {IMPLAUSIBLE_MM3:.0f} mm^3 (more than a skull holds): the "
+                      "law's extrapolation has broken down; do not read it as a prediction")
 
 
 def _exclusion_notes(table: pd.DataFrame) -> pd.Series:
@@ -219,27 +256,76 @@ def _exclusion_notes(table: pd.DataFrame) -> pd.Series:
     return "sessions left out: " + text.groupby("series")["t"].agg(", ".join)
 
 
+#: A fit whose sigma_log is below this has a zero residual (exact to rounding; common practice).
+ZERO_SIGMA = 1e-8
+
+
+def _names(rows: pd.DataFrame, mask: pd.Series) -> pd.Series:
+    """Per series, the models of the rows in ``mask`` joined by ', '."""
+    return rows[mask].groupby("series")["model"].agg(", ".join)
+
+
+def _zero_residual(rows: pd.DataFrame, usable: pd.Series, settings: FitSettings) -> pd.Series:
+    """Rows that fit exactly although they have residual dof (sigma estimated): AICc -> -inf."""
+    if settings.measurement_error > 0:
+        return pd.Series(False, index=rows.index)
+    sigma = pd.to_numeric(rows["sigma_log"], errors="coerce") if "sigma_log" in rows else np.nan
+    df = pd.to_numeric(rows["df_resid"], errors="coerce") if "df_resid" in rows else np.nan
+    return usable & (df > 0) & (sigma < ZERO_SIGMA)
+
+
 def _choose_best(rows: pd.DataFrame, settings: FitSettings) -> pd.DataFrame:
+    """``best`` and ``akaike_weight`` per series, with a note on the best row saying why.
+
+    A law with a zero residual and residual dof (AICc -> -infinity) beats every law with a
+    positive residual; among such laws the fewest parameters win. Laws whose AICc is undefined
+    (too few sessions for their parameters) are named in the note when others were compared.
+    """
     order = {m: i for i, m in enumerate(settings.models)}
     usable = ~rows["status"].isin(["failed", "not-fitted"])
+    zero = _zero_residual(rows, usable, settings)
+    rows.loc[zero, "aicc"] = np.nan              # a finite value here would be rounding noise
+    exact_series = set(rows.loc[zero, "series"])
+    in_exact = rows["series"].isin(exact_series)
     rows["akaike_weight"] = np.nan
-    finite = usable & rows["aicc"].notna()
+    finite = usable & rows["aicc"].notna() & ~in_exact
     if finite.any():
         delta = rows["aicc"] - rows[finite].groupby("series")["aicc"].transform("min")
         weight = np.exp(-0.5 * delta[finite])
         total = weight.groupby(rows.loc[finite, "series"]).transform("sum")
         rows.loc[finite, "akaike_weight"] = weight / total
-    rank = rows.assign(no_aicc=~finite, order=rows["model"].map(order),
-                       key=np.where(finite, rows["aicc"], rows["n_params"]))[usable]
-    rank = rank.sort_values(["series", "no_aicc", "key", "rss_log", "order"])
+    tier = np.where(zero, 0, np.where(finite, 1, 2))
+    key = np.where(zero | ~finite, rows["n_params"], rows["aicc"])
+    rank = rows.assign(tier=tier, order=rows["model"].map(order), key=key)[usable]
+    rank = rank.sort_values(["series", "tier", "key", "rss_log", "order"])
     first = rank.groupby("series").head(1)
     rows["best"] = False
     rows.loc[first.index, "best"] = True
-    by_count = first.index[first["no_aicc"].to_numpy()]
-    for i in by_count:
-        rows.at[i, "note"].append("best by fewest parameters: AICc undefined for every law "
-                                  "(too few sessions)")
+    _best_notes(rows, first, zero, finite, usable)
     return rows
+
+
+def _best_notes(rows: pd.DataFrame, first: pd.DataFrame, zero: pd.Series, finite: pd.Series,
+                usable: pd.Series) -> None:
+    exact_names = _names(rows, zero)
+    positive = _names(rows, usable & ~zero)
+    undefined = _names(rows, usable & ~zero & rows["aicc"].isna())
+    for i, tier in zip(first.index, first["tier"].to_numpy()):
+        series, model = rows.at[i, "series"], rows.at[i, "model"]
+        note = rows.at[i, "note"]
+        if tier == 0:
+            others = [m for m in exact_names[series].split(", ") if m != model]
+            note.append(f"best: {model} fits exactly (zero residual with residual dof, AICc "
+                        "-infinity), so it is preferred to every law with a positive residual"
+                        + (f" ({positive[series]})" if series in positive.index else "")
+                        + (f"; also exact: {', '.join(others)} (more parameters, or later "
+                           "in models)" if others else "") + "; Akaike weights undefined")
+        elif tier == 2:
+            note.append("best by fewest parameters: AICc undefined for every law "
+                        "(too few sessions)")
+        elif series in undefined.index:
+            note.append(f"not compared by AICc (too few sessions for their parameters): "
+                        f"{undefined[series]}")
 
 
 def finish_rows(series: pd.DataFrame, table: pd.DataFrame, pieces: list, *,
@@ -277,4 +363,7 @@ def finish_rows(series: pd.DataFrame, table: pd.DataFrame, pieces: list, *,
     rows["group"] = (rows["series"].map(group).fillna("").astype(str).replace(
         {"": "all", "n/a": "all", "nan": "all"}) if group is not None else "all")
     rows = rows.sort_values(["subject", "lesion", "phase", "model"], kind="stable")
-    return rows.reindex(columns=ORDER).reset_index(drop=True)
+    rows = rows.reindex(columns=ORDER).reset_index(drop=True)
+    for name in ("n_points", "df_resid"):          # counts print as integers, never "1.0"
+        rows[name] = pd.to_numeric(rows[name], errors="coerce").round().astype("Int64")
+    return rows

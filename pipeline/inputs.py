@@ -150,6 +150,10 @@ def parse_labels(text: str) -> tuple[int, ...] | None:
     return values
 
 
+#: Largest ``day`` accepted (in magnitude): about 2,700 years; larger is a unit or origin mistake.
+MAX_ABS_DAY = 1.0e6
+
+
 def parse_when(value: str, kind: str) -> float:
     """A ``date`` cell as seconds-resolution days since 1 Jan 1 (for differences), or a ``day``.
 
@@ -170,6 +174,9 @@ def parse_when(value: str, kind: str) -> float:
             raise ValueError(f"day {text!r} is not a number") from None
         if not np.isfinite(number):
             raise ValueError(f"day {text!r} is not finite")
+        if abs(number) > MAX_ABS_DAY:
+            raise ValueError(f"day {text!r} is beyond +-{MAX_ABS_DAY:.0f} days (about 2,700 "
+                             "years) from its reference; give days from a nearby reference")
         return number
     try:
         moment = datetime.fromisoformat(text.replace("Z", "+00:00"))
@@ -213,7 +220,7 @@ def finish_scans(scans: list[Scan]) -> list[Scan]:
     duplicated = keys.duplicated(keep=False).to_numpy()
     out = [_refuse(s, f"session {s.session} of subject {s.subject} is listed more than once; "
                    "every row of it is refused") if dup else s for s, dup in zip(out, duplicated)]
-    return _refuse_unnameable(_refuse_shared_days(out))
+    return _refuse_unnameable(_refuse_mixed_groups(_refuse_shared_days(out)))
 
 
 def _refuse_unnameable(scans: list[Scan]) -> list[Scan]:
@@ -228,6 +235,20 @@ def _refuse_unnameable(scans: list[Scan]) -> list[Scan]:
         if problems:
             scans[i] = _refuse(scan, "; ".join(problems))
     return scans
+
+
+def _refuse_mixed_groups(scans: list[Scan]) -> list[Scan]:
+    """A subject belongs to one group: rows of one subject naming different groups are refused
+    (which one is meant is unclear; an empty group counts as a value of its own)."""
+    groups: dict[str, set[str]] = {}
+    for scan in scans:
+        groups.setdefault(scan.subject, set()).add(scan.group.strip())
+    mixed = {s: sorted(g) for s, g in groups.items() if len(g) > 1}
+    if not mixed:
+        return scans
+    return [_refuse(s, f"subject {s.subject} has different groups in its rows "
+                       f"({', '.join(repr(g) for g in mixed[s.subject])}); every row of it is "
+                       "refused") if s.subject in mixed else s for s in scans]
 
 
 def _refuse_shared_days(scans: list[Scan]) -> list[Scan]:

@@ -156,37 +156,73 @@ def events_table(path: Path) -> tuple[pd.DataFrame, str]:
     return table, kind
 
 
-def read_events(path: Path, origins: dict[str, float], known: set[str],
-                lesions: set[tuple[str, int]] | None = None) -> tuple[pd.DataFrame, list[dict]]:
-    """Events as days from each subject's first session; rows naming unknown subjects refused."""
-    from pipeline.inputs import parse_when
+#: An event further than this from a subject's follow-up (days) is warned about.
+FAR_FROM_FOLLOW_UP_DAYS = 365.25
 
+
+def read_events(path: Path, origins: dict[str, float], known: set[str],
+                lesions: set[tuple[str, int]] | None = None, *, manifest_kind: str = "date",
+                follow_up: dict[str, tuple[float, float]] | None = None,
+                warnings: list[str] | None = None) -> tuple[pd.DataFrame, list[dict]]:
+    """Events as days from each subject's first session; rows naming unknown subjects refused.
+
+    An events ``day`` is in the manifest's ``day`` reference when the manifest gives days, and
+    counts from the subject's first session when the manifest gives dates. Event dates with a
+    manifest of days cannot be placed: the whole file is refused with one error row. Events
+    further than :data:`FAR_FROM_FOLLOW_UP_DAYS` from a subject's ``follow_up`` (first and last
+    session day) add a line to ``warnings``.
+    """
     table, kind = events_table(path)
+    columns = ["subject", "day", "event", "lesion", "day_given"]
+    if kind == "date" and manifest_kind == "day":
+        return pd.DataFrame(columns=columns), [{
+            "subject": "", "session": "", "path": str(path), "stage": "events",
+            "reason": f"{path.name}: events give dates but the manifest gives days from its own "
+                      "reference, so no event can be placed; give the events a 'day' column in "
+                      "the manifest's reference"}]
     rows, errors = [], []
     for index, row in table.iterrows():
         where = f"{path.name} row {index + 2}"
         try:
-            if row.subject not in known:
-                raise ValueError(f"subject {row.subject!r} is not in the input")
-            when = round(parse_when(row[kind], kind) - origins.get(row.subject, 0.0), 6)
-            # a date without a time stands for the whole day: sessions imaged that day, at any
-            # time, belong to the phase before it (contract: imaging precedes treatment)
-            boundary = when + 1.0 - 1e-6 if kind == "date" and len(row[kind].strip()) == 10 \
-                else when
-            lesion = float(row.lesion) if "lesion" in table.columns and row.lesion else np.nan
-            if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):
-                raise ValueError(f"lesion {row.lesion!r} must be a positive integer")
-            if not np.isnan(lesion) and lesions is not None and \
-                    (row.subject, int(lesion)) not in lesions:
-                raise ValueError(f"subject {row.subject} has no lesion {row.lesion!r}")
+            rows.append(_event_row(row, kind, manifest_kind, origins, known, lesions,
+                                   "lesion" in table.columns))
         except ValueError as exc:
             errors.append({"subject": row.subject, "session": "", "path": str(path),
                            "stage": "events", "reason": f"{where}: {exc}"})
             continue
-        rows.append({"subject": row.subject, "day": boundary, "event": row.event,
-                     "lesion": lesion, "day_given": when})
-    columns = ["subject", "day", "event", "lesion", "day_given"]
+        span = (follow_up or {}).get(row.subject)
+        if span and warnings is not None and not (
+                span[0] - FAR_FROM_FOLLOW_UP_DAYS <= rows[-1]["day_given"]
+                <= span[1] + FAR_FROM_FOLLOW_UP_DAYS):
+            warnings.append(f"{where}: event day {rows[-1]['day_given']:g} of subject "
+                            f"{row.subject} lies more than {FAR_FROM_FOLLOW_UP_DAYS:g} days "
+                            f"outside its sessions (days {span[0]:g} to {span[1]:g}); check "
+                            "the day the events count from")
     return pd.DataFrame(rows, columns=columns), errors
+
+
+def _event_row(row: pd.Series, kind: str, manifest_kind: str, origins: dict[str, float],
+               known: set[str], lesions: set[tuple[str, int]] | None, has_lesion: bool) -> dict:
+    """One events row as days from the subject's first session (ValueError when unusable)."""
+    from pipeline.inputs import parse_when
+
+    if row.subject not in known:
+        raise ValueError(f"subject {row.subject!r} is not in the input")
+    value = parse_when(row[kind], kind)
+    # a day with a dated manifest already counts from the subject's first session (README)
+    shift = 0.0 if kind == "day" and manifest_kind == "date" else origins.get(row.subject, 0.0)
+    when = round(value - shift, 6)
+    # a date without a time stands for the whole day: sessions imaged that day, at any
+    # time, belong to the phase before it (contract: imaging precedes treatment)
+    boundary = when + 1.0 - 1e-6 if kind == "date" and len(row[kind].strip()) == 10 else when
+    lesion = float(row.lesion) if has_lesion and row.lesion else np.nan
+    if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):
+        raise ValueError(f"lesion {row.lesion!r} must be a positive integer")
+    if not np.isnan(lesion) and lesions is not None and \
+            (row.subject, int(lesion)) not in lesions:
+        raise ValueError(f"subject {row.subject} has no lesion {row.lesion!r}")
+    return {"subject": row.subject, "day": boundary, "event": row.event, "lesion": lesion,
+            "day_given": when}
 
 
 def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:

@@ -8,6 +8,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 
+#: Longest forecast horizon accepted (days): about 5 years after the last fitted session.
+MAX_FORECAST_DAYS = 1826.0
+
+
 def _require(condition: bool, message: str) -> None:
     if not condition:
         raise ValueError(message)
@@ -94,15 +98,21 @@ class FitSettings:
     from_nadir: bool = True           # after an event, fit from the phase's nadir on (regrowth)
     fit_merged_sum: bool = False      # fit a survivor's rows after a merge (summed volume)
     detection_limit_mm3: float = 0.0  # volumes in (0, this] are left out (mm^3)
-    forecast_days: float = 90.0       # forecast horizon after the last fitted session (days)
+    forecast_days: float = 90.0       # horizon after the last fitted session (days, 0-1826)
     bootstrap: int = 0                # parametric-bootstrap repeats for beta (0 = off)
     seed: int = 0                     # random seed of the bootstrap
 
     def __post_init__(self) -> None:
+        numbers = {k: v for k, v in vars(self).items() if isinstance(v, float)}
+        numbers.update({f"beta_bounds[{i}]": float(v) for i, v in enumerate(self.beta_bounds)})
+        bad = [k for k, v in numbers.items() if v != v or v in (float("inf"), -float("inf"))]
+        _require(not bad, f"{', '.join(bad)} must be a finite number")
         _require(len(self.models) > 0, "models must name at least one law")
         known = ("power", "exponential", "gompertz", "logistic", "surface")
         unknown = [m for m in self.models if m not in known]
         _require(not unknown, f"unknown growth law(s) {unknown}; choose from {list(known)}")
+        repeated = sorted({m for m in self.models if self.models.count(m) > 1})
+        _require(not repeated, f"models names {repeated} more than once; name each law once")
         _require(len(self.beta_bounds) == 2 and self.beta_bounds[0] < 1.0 < self.beta_bounds[1],
                  f"beta_bounds must be (low, high) with low < 1 < high, got {self.beta_bounds}")
         _require(self.max_rate_per_day > 0, "max_rate_per_day must be > 0")
@@ -111,7 +121,10 @@ class FitSettings:
         _require(0.5 <= self.confidence < 1, "confidence must be in [0.5, 1)")
         _require(self.max_beta_ci_width > 0, "max_beta_ci_width must be > 0")
         _require(self.detection_limit_mm3 >= 0, "detection_limit_mm3 must be >= 0")
-        _require(self.forecast_days >= 0, "forecast_days must be >= 0")
+        _require(0 <= self.forecast_days <= MAX_FORECAST_DAYS,
+                 f"forecast_days must be between 0 and {MAX_FORECAST_DAYS:g} days (5 years: a "
+                 f"law fitted to months of follow-up says nothing further), got "
+                 f"{self.forecast_days:g}")
         _require(self.bootstrap >= 0, "bootstrap must be >= 0 (0 = off)")
 
 

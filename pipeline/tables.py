@@ -12,6 +12,7 @@ import warnings
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from pipeline.files import atomic_path, write_text  # noqa: F401 - the writers live there
@@ -31,6 +32,9 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
 
     ``columns`` fixes the order of the first columns (the contract's); any other columns follow
     in their current order. Missing values are written ``n/a``; booleans as ``true``/``false``.
+    A number that is not finite (``inf``, ``-inf``, ``nan``) is written ``n/a`` too, in every
+    column, so no table ever holds ``inf`` or ``nan`` as text (the producing stage says why in
+    its ``note``).
 
     Examples
     --------
@@ -39,12 +43,17 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
     >>> write_table(pd.DataFrame({"subject": ["01"], "x": [None]}), d / "t.tsv")
     >>> (d / "t.tsv").read_text()
     'subject\\tx\\n01\\tn/a\\n'
+    >>> write_table(pd.DataFrame({"v": [float("inf"), 2.5]}), d / "f.tsv")
+    >>> (d / "f.tsv").read_text()
+    'v\\nn/a\\n2.5\\n'
     """
     table = _ordered(table, columns)
     out = table.copy()
     for name in out.columns:
         if out[name].dtype == bool:
             out[name] = out[name].map({True: "true", False: "false"})
+        elif pd.api.types.is_float_dtype(out[name].dtype):
+            out[name] = out[name].where(np.isfinite(out[name].to_numpy(float, na_value=np.nan)))
         elif out[name].dtype == object or pd.api.types.is_string_dtype(out[name].dtype):
             out[name] = out[name].astype(object).map(_cell)
     with atomic_path(path) as tmp:
@@ -56,6 +65,8 @@ def _cell(value: object) -> object:
         return "true" if value else "false"
     if isinstance(value, str) and value == "":
         return None          # written as n/a, as BIDS does for a missing value
+    if isinstance(value, float | np.floating) and not np.isfinite(value):
+        return None          # inf/nan in a mixed column: n/a as well
     return value
 
 

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import fcntl
 import json
+import math
 import time
 import sys
 from collections.abc import Iterator
@@ -209,11 +210,23 @@ def _events(path: Path | None, stage: Stage1, errors: list[dict],
 
         tracks = read_table(out / "longitudinal.tsv")
         lesions = set(zip(tracks.subject, tracks.lesion.astype(int)))
+    kinds = {s.extra.get("kind", "date") for s in stage.scans}
+    spans: dict[str, tuple[float, float]] = {}
+    for s in stage.scans:
+        if math.isfinite(s.day):
+            low, high = spans.get(s.subject, (s.day, s.day))
+            spans[s.subject] = (min(low, s.day), max(high, s.day))
+    warnings: list[str] = []
     events, problems = read_events(Path(path), subject_origins(stage.scans),
-                                   {s.subject for s in stage.scans}, lesions)
+                                   {s.subject for s in stage.scans}, lesions,
+                                   manifest_kind="day" if kinds == {"day"} else "date",
+                                   follow_up=spans, warnings=warnings)
     errors.extend(problems)
     for row in problems:
-        say(f"error: sub {row['subject']}: {row['reason']}")
+        say(f"error: sub {row['subject']}: {row['reason']}" if row["subject"]
+            else f"error: {row['reason']}")
+    for line in warnings:
+        say(f"warning: {line}")
     return events
 
 
@@ -440,6 +453,11 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
         run_state.require(out, "evaluate")
         fits = read_table(out / "fits.tsv")
         table = read_table(outcomes, text_columns=("subject", "outcome"))
+        tracks = out / "longitudinal.tsv"
+        known = set((read_table(tracks) if tracks.exists() else fits)["subject"].astype(str))
+        table, problems = evaluate.unknown_subjects(table, known, name=Path(outcomes).name)
+        for row in problems:
+            say(f"error: sub {row['subject']}: {row['reason']}")
         try:
             result = evaluate.evaluate_marker(fits, table, figures=figures, phase=phase,
                                               model=model, positive=positive)
@@ -454,10 +472,12 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
         doc = getattr(evaluate, "COLUMNS", None)
         if isinstance(doc, dict):
             write_sidecar(out / "evaluation.tsv", doc)
+        if problems or (out / "errors.tsv").exists():
+            write_errors(_keep_errors(out, ("evaluate",)) + problems, out)
         run_state.stage_done(out, run, "evaluate")
         run_state.finish(out, run)
     say(f"wrote evaluation.tsv in {out}")
-    return 0
+    return 1 if problems else 0
 
 
 def run_demo(out: Path, *, workers: int = 1, quiet: bool = False, subjects: int = 12) -> int:

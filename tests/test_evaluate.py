@@ -220,3 +220,23 @@ def test_one_class_phase_is_reported_not_raised():
 def test_every_output_column_is_documented():
     row = evaluate_marker(*_tables(C24_POS, C24_NEG), n_boot=20)
     assert list(row.columns) == list(COLUMNS)
+
+
+def test_outcome_rows_for_unknown_subjects_are_listed_not_ignored(tmp_path, capsys):
+    # Reference: README (bad input): rows naming unknown subjects are listed in errors.tsv and
+    # the exit status is 1; the AUC is that of the known rows (C24: 1.0 for separated values).
+    from pipeline.tables import read_table, write_table
+    from pipeline.workflow import evaluate_only
+
+    fits, outcomes = _tables([2.0, 3.0, 2.5], [1.0, 0.5, 1.5])
+    write_table(fits, tmp_path / "fits.tsv")
+    extra = pd.DataFrame({"subject": ["zz"], "lesion": [1], "outcome": ["1"]})
+    write_table(pd.concat([outcomes, extra]), tmp_path / "outcomes.tsv")
+    assert evaluate_only(tmp_path, tmp_path / "outcomes.tsv", figures=("beta",), phase=None,
+                         model="power", positive=None) == 1
+    errors = read_table(tmp_path / "errors.tsv")
+    assert errors[["subject", "stage"]].values.tolist() == [["zz", "evaluate"]]
+    assert "outcomes.tsv row 8: subject 'zz' is not in the run" in errors.reason[0]
+    assert "zz" in capsys.readouterr().err
+    row = read_table(tmp_path / "evaluation.tsv").iloc[0]
+    assert (row.auc, row.n_positive, row.n_left_out) == (1.0, 3, 0)

@@ -274,3 +274,28 @@ def test_beta_bounds_from_settings_and_at_bound_status():
     assert "beta at its bound" in fit.note
     free = fit_groups(table).iloc[0]
     assert free.status == "ok" and free.beta_ci_low < 2.2 < free.beta_ci_high
+
+
+def test_lesions_without_change_do_not_narrow_the_interval():
+    # Reference: a series with the same volume at every session is fitted exactly by k = 0 at
+    # every beta (closed form, REFERENCES.md 1.1), so it carries no information on beta; the
+    # interval must stay that of the informative lesion alone. beta of that lesion is checked
+    # against scipy.optimize.least_squares on the closed form (an independent fit).
+    days = np.array([0.0, 30, 60, 90, 120])
+    volume = 100 * (1 + 0.01 * days) ** 1.4 * np.exp([0, .05, -.05, .04, 0])
+    grow = pd.DataFrame(dict(subject="g", lesion=1, day=days, volume_mm3=volume,
+                             phase="untreated", in_fit=True))
+    flat = pd.concat([grow.assign(subject=f"c{i}", volume_mm3=500.0) for i in range(5)])
+    alone, mixed = fit_groups(grow).iloc[0], fit_groups(pd.concat([grow, flat])).iloc[0]
+    for name in ("beta", "beta_ci_high", "dof", "sigma_log", "n_lesions", "n_points"):
+        assert mixed[name] == pytest.approx(alone[name], rel=1e-9, nan_ok=True), name
+    assert np.isnan(alone.beta_ci_low) and np.isnan(mixed.beta_ci_low)
+    assert "5 lesion(s) with the same volume at every fitted session left out" in mixed.note
+
+    def residuals(p):
+        return np.log(_closed_form(np.exp(p[0]), p[1], p[2], days)) - np.log(volume)
+    reference = optimize.least_squares(residuals, [np.log(100), 0.01, 0.5],
+                                       bounds=([-np.inf, -2, -1], [np.inf, 2, 3]))
+    assert mixed.beta == pytest.approx(reference.x[2], abs=1e-3)
+    only_flat = fit_groups(flat).iloc[0]
+    assert only_flat.status == "no-lesions" and "same volume" in only_flat.note

@@ -206,3 +206,116 @@ def test_bootstrap_and_forecast_interval():
     assert r["beta_boot_low"] < r["beta"] < r["beta_boot_high"]
     assert r["forecast_low_mm3"] < r["forecast_mm3"] < r["forecast_high_mm3"]
     assert r["forecast_day"] == pytest.approx(r["day_end"] + 90.0)
+
+
+def test_an_exact_fit_is_never_beaten_by_a_law_with_a_positive_residual():
+    # Reference: AICc = n ln(RSS/n) + 2k + 2k(k+1)/(n-k-1) (Hurvich and Tsai 1989; Burnham and
+    # Anderson 2002) tends to -infinity as RSS -> 0 with n > k + 1, so a law fitting exactly
+    # with residual dof beats every law with RSS > 0. The data are exactly exponential:
+    # numpy.polyfit (an independent linear least-squares fit of ln V on t) leaves no residual.
+    days = np.array([0.0, 30, 60, 90, 120])
+    volumes = 100.0 * np.exp(0.01 * days)
+    residual = np.polyfit(days, np.log(volumes), 1, full=True)[1]
+    assert residual.size == 0 or residual[0] < 1e-20
+    fits = fit_lesions(_phased(days, volumes)).set_index("model")
+    assert fits["best"].sum() == 1 and fits.loc["exponential", "best"]
+    assert fits.loc["surface", "sigma_log"] > 0.01            # the law that used to win
+    assert fits["akaike_weight"].isna().all()
+    note = fits.loc["exponential", "note"]
+    assert "fits exactly" in note and "surface" in note and "power" in note
+
+
+def test_a_zero_residual_with_more_parameters_wins_over_positive_residuals():
+    # Reference: closed form of dV/dt = alpha V^beta, V = V0 (1 + (1 - beta) k t)^(1/(1-beta))
+    # (REFERENCES 1.1): six noise-free points fit the power law exactly; AICc as above.
+    days = np.arange(6) * 30.0
+    fits = fit_lesions(_phased(days, 50 * (1 + 0.02 * days) ** 1.5)).set_index("model")
+    assert fits.loc["power", "best"] and fits["best"].sum() == 1
+    assert fits.loc["power", "beta"] == pytest.approx(1 - 1 / 1.5, abs=1e-6)   # 1/(1-b) = 1.5
+    assert np.isnan(fits.loc["power", "aicc"]) and "fits exactly" in fits.loc["power", "note"]
+
+
+def test_laws_without_aicc_are_named_when_others_are_compared():
+    # Reference: REFERENCES.md C18: with sigma estimated k = p + 1, so AICc is undefined for the
+    # 3-parameter laws (k = 4) at n = 5 and defined for the 2-parameter laws (k = 3).
+    rng = np.random.default_rng(4)
+    t, y = _simulate(rng, 1, 5, 0.8, 0.1, fold=8.0)
+    fits = fit_lesions(_phased(t[0], np.exp(y[0]))).set_index("model")
+    best = fits[fits["best"]].iloc[0]
+    assert best.name in ("exponential", "surface")
+    assert "not compared by AICc" in best["note"]
+    for name in ("power", "gompertz", "logistic"):
+        assert np.isnan(fits.loc[name, "aicc"]) and name in best["note"]
+
+
+def test_forecast_overflow_is_n_a_with_a_note_and_never_inf_in_a_table(tmp_path):
+    # Reference: IEEE 754 double range, exp(x) overflows for x > ln(max double) ~ 709.78
+    # (numpy.finfo); here ln V at the forecast day is ln 50 + 0.4 (150 + 1826) ~ 794.
+    from pipeline.tables import write_table
+
+    assert np.log(np.finfo(float).max) == pytest.approx(709.78, abs=0.01)
+    days = np.arange(6) * 30.0
+    volumes = 50 * np.exp(0.4 * days) * np.exp([0, .1, -.1, .1, -.1, 0])
+    fits = fit_lesions(_phased(days, volumes), settings=FitSettings(
+        models=("exponential",), max_rate_per_day=2.0, forecast_days=1826.0))
+    row = fits.iloc[0]
+    assert np.isnan(row["forecast_mm3"]) and np.isnan(row["forecast_high_mm3"])
+    assert "forecast overflows" in row["note"]
+    write_table(fits, tmp_path / "fits.tsv")
+    cells = {c for line in (tmp_path / "fits.tsv").read_text().splitlines()[1:]
+             for c in line.split("\t")}
+    assert not cells & {"inf", "-inf", "nan", "NaN"}
+
+
+def test_implausible_forecast_is_flagged():
+    # Reference: adult intracranial volume is about 1.2-1.7 litres (from memory); a forecast
+    # above 2e6 mm^3 cannot be a brain lesion. Exponential growth 0.05/day from 50 mm^3 over
+    # 150 + 1000 days: 50 exp(57.5) mm^3 (closed form of dV/dt = k V).
+    days = np.arange(6) * 30.0
+    fits = fit_lesions(_phased(days, 50 * np.exp(0.05 * days) * np.exp([0, .05, -.05, 0, .05, 0])),
+                       settings=FitSettings(models=("exponential",), forecast_days=1000.0))
+    row = fits.iloc[0]
+    assert row["forecast_mm3"] == pytest.approx(50 * np.exp(0.05 * 1150), rel=0.2)
+    assert "more than a skull holds" in row["note"]
+
+
+@pytest.mark.parametrize("horizon", [float("inf"), float("nan"), 3650.0, -1.0])
+def test_forecast_horizon_is_bounded(horizon):
+    with pytest.raises(ValueError, match="forecast_days must be (between 0 and 1826|a finite)"):
+        FitSettings(forecast_days=horizon)
+
+
+def test_a_law_named_twice_is_refused():
+    with pytest.raises(ValueError, match="more than once"):
+        FitSettings(models=("power", "exponential", "power"))
+
+
+def test_counts_print_as_integers_also_when_nothing_is_fitted(tmp_path):
+    # Reference: BIDS tabular files (common practice): a count is written as an integer.
+    from pipeline.api import fit_growth
+    from pipeline.tables import write_table
+
+    longitudinal = pd.DataFrame({"subject": "01", "lesion": 1, "session": ["a", "b"],
+                                 "day": [0.0, 30.0], "volume_mm3": [5.0, 0.0],
+                                 "status": "present"})
+    _, _, unfitted = fit_growth(longitudinal)
+    write_table(unfitted, tmp_path / "unfitted.tsv")
+    header, line = (tmp_path / "unfitted.tsv").read_text().splitlines()
+    assert dict(zip(header.split("\t"), line.split("\t")))["n_points"] == "1"
+
+
+def test_beta_of_a_lesion_without_change_is_n_a():
+    # Reference: closed form V = V0 (1 + (1 - beta) k t)^(1/(1-beta)) (REFERENCES 1.1) is
+    # constant for k = 0 whatever beta, so beta is not identifiable from a constant series.
+    fits = fit_lesions(_phased([0, 30, 60, 90, 120], [500.0] * 5)).set_index("model")
+    assert np.isnan(fits.loc["power", "beta"]) and np.isnan(fits.loc["power", "beta_ci_low"])
+    assert "any beta fits" in fits.loc["power", "note"]
+    assert fits.loc["exponential", "best"]                  # exact, fewest parameters
+
+
+@pytest.mark.parametrize("field", ["measurement_error", "max_rate_per_day", "detection_limit_mm3"])
+def test_non_finite_fit_settings_are_refused(field):
+    with pytest.raises(ValueError, match=f"{field} must be a finite number"):
+        FitSettings(**{field: float("inf")})
+    with pytest.raises(ValueError, match="beta_bounds"):
+        FitSettings(beta_bounds=(-float("inf"), 3.0))

@@ -139,3 +139,17 @@ def test_absolute_manifest_paths_stay_out_of_tables(tmp_path):
             assert str(tmp_path) not in path.read_text(errors="ignore"), path.name
     assert str(tmp_path / "in" / "a.nii.gz") in (tmp_path / "out" / "provenance.json").read_text()
     assert read_table(tmp_path / "out" / "errors.tsv").reason[0].startswith("gone.nii.gz:")
+
+
+def test_a_subject_with_two_groups_is_refused_in_one_line(tmp_path):
+    # Reference: README (bad input): ambiguous rows are refused whole; a subject belongs to one
+    # group (common practice: a treatment arm is a property of the patient).
+    (tmp_path / "m.tsv").write_text("subject\tsession\tmask\tday\tgroup\n"
+                                    "A\t1\ta1.nii.gz\t0\tarm-1\nA\t2\ta2.nii.gz\t30\tarm-2\n"
+                                    "B\t1\tb1.nii.gz\t0\tarm-1\nB\t2\tb2.nii.gz\t30\tarm-1\n")
+    scans, _ = read_inputs(tmp_path / "m.tsv")
+    errors = {s.key: s.error for s in scans}
+    assert errors[("B", "1")] == errors[("B", "2")] == ""
+    for session in ("1", "2"):
+        assert "subject A has different groups in its rows ('arm-1', 'arm-2')" in \
+            errors[("A", session)] and "\n" not in errors[("A", session)]
