@@ -115,6 +115,24 @@ class FitSettings:
         _require(self.bootstrap >= 0, "bootstrap must be >= 0 (0 = off)")
 
 
+# ---- response: owned by pipeline/response.py's authors; edit only this class ----
+@dataclass(frozen=True)
+class ResponseSettings:
+    """Target-lesion radiographic response (response.tsv); research use only."""
+
+    write: bool = True                # fit and run write response.tsv and response_subjects.tsv
+    max_targets: int = 5              # target lesions chosen at baseline (RANO-BM: up to 5)
+    absolute_rule: str = "lesion"     # PD also needs 'lesion' (one target, RANO-BM) or 'sum'
+    #                                   (RECIST 1.1) grown by absolute_mm
+    absolute_mm: float = 5.0          # absolute growth of progression (mm)
+
+    def __post_init__(self) -> None:
+        _require(self.max_targets >= 1, "max_targets must be >= 1")
+        _require(self.absolute_rule in ("lesion", "sum"),
+                 f"absolute_rule must be 'lesion' or 'sum', got {self.absolute_rule!r}")
+        _require(self.absolute_mm >= 0, "absolute_mm must be >= 0")
+
+
 # ---- report: owned by pipeline/report.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class ReportSettings:
