@@ -409,7 +409,8 @@ def summarize_response(response: pd.DataFrame) -> pd.DataFrame:
                      "baseline_session": base["session"].iloc[0] if len(base) else "",
                      "n_target": int(part["n_target"].iloc[0]), "best_response": _best(cats),
                      "best_change_baseline_pct": pd.to_numeric(
-                         part["change_baseline_pct"]).min(),
+                         part.loc[part["category"].isin(list(_RANK)), "change_baseline_pct"]
+                     ).min(),
                      "first_progression_day": pd_days[0] if pd_days else np.nan,
                      "response_start_day": start, "response_duration_days": end - start,
                      "response_ongoing": bool(responded) and not after,
