@@ -100,7 +100,8 @@ class FitSettings:
 
     def __post_init__(self) -> None:
         _require(len(self.models) > 0, "models must name at least one law")
-        known = ("power", "exponential", "gompertz", "logistic", "surface")
+        known = ("power", "exponential", "gompertz", "logistic", "surface",
+                 "regression_regrowth", "bertalanffy_loss")
         unknown = [m for m in self.models if m not in known]
         _require(not unknown, f"unknown growth law(s) {unknown}; choose from {list(known)}")
         _require(len(self.beta_bounds) == 2 and self.beta_bounds[0] < 1.0 < self.beta_bounds[1],
