@@ -92,6 +92,9 @@ class FitSettings:
     confidence: float = 0.95          # level of beta and forecast intervals (0-1)
     max_beta_ci_width: float = 1.0    # wider beta interval -> note 'not pinned down' (unit-free)
     from_nadir: bool = True           # after an event, fit from the phase's nadir on (regrowth)
+    nadir_noise_sd: float = 0.1       # ln-volume SD of the nadir tolerance if measurement_error=0
+    response_models: tuple[str, ...] = (  # laws fitted over whole post-event phases (shrinkage)
+        "regression_regrowth", "bertalanffy_loss")
     fit_merged_sum: bool = False      # fit a survivor's rows after a merge (summed volume)
     detection_limit_mm3: float = 0.0  # volumes in (0, this] are left out (mm^3)
     forecast_days: float = 90.0       # forecast horizon after the last fitted session (days)
@@ -104,6 +107,9 @@ class FitSettings:
                  "regression_regrowth", "bertalanffy_loss")
         unknown = [m for m in self.models if m not in known]
         _require(not unknown, f"unknown growth law(s) {unknown}; choose from {list(known)}")
+        odd = [m for m in self.response_models if m not in known]
+        _require(not odd, f"unknown response law(s) {odd}; choose from {list(known)}")
+        _require(self.nadir_noise_sd >= 0, "nadir_noise_sd must be >= 0")
         _require(len(self.beta_bounds) == 2 and self.beta_bounds[0] < 1.0 < self.beta_bounds[1],
                  f"beta_bounds must be (low, high) with low < 1 < high, got {self.beta_bounds}")
         _require(self.max_rate_per_day > 0, "max_rate_per_day must be > 0")
