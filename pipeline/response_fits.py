@@ -5,7 +5,10 @@ of ``FitSettings.response_models`` (:mod:`pipeline.response_laws`) are fitted to
 from its first session, the response included. Their rows carry ``window`` = ``phase`` (the
 regrowth rows ``from-nadir``; untreated and ``from_nadir = false`` rows ``phase``), their own
 Akaike weights and ``best`` = false: AICc compares laws on the same sessions only, so they are
-never ranked against the regrowth rows. Research use only (``pipeline.DISCLAIMER``).
+never ranked against the regrowth rows. Sessions of the phase where the lesion was not seen
+(absent, or below ``detection_limit_mm3``) enter these fits as left-censored observations
+(:mod:`pipeline.censored`), and the row reports the first such day (``first_absent_day``).
+Research use only (``pipeline.DISCLAIMER``).
 """
 from __future__ import annotations
 
@@ -33,7 +36,11 @@ WINDOW_COLUMNS: dict[str, dict] = {
     "depth_of_response": {"Description": "nadir_mm3 / v0_mm3 (fitted volume at the phase's "
                           "first session)", "Units": "n/a"},
     "loss_per_day": {"Description": "Loss rate c of dV/dt = a V^b - c V", "Units": "1/day"},
+    "first_absent_day": {"Description": "Whole-phase rows: first day of the phase the lesion was "
+                         "not seen (absent or below detection; entered left-censored)",
+                         "Units": "day"},
 }
+_UNSEEN = ("absent", "below-detection")
 
 
 def fit_whole_phases(phased: pd.DataFrame, *, settings: FitSettings = FitSettings()
@@ -76,10 +83,78 @@ def fit_whole_phases(phased: pd.DataFrame, *, settings: FitSettings = FitSetting
     widened["in_fit"] = widened["in_fit"].astype(bool) | nadir
     rows = fit_lesions(widened, settings=replace(settings, models=names))
     rows = rows[rows["model"] != "none"].copy()
+    censored = _censored_rows(widened, names, _log_limit(phased, settings), settings)
+    if len(censored):
+        keys = ["subject", "lesion", "phase"]
+        done = pd.MultiIndex.from_frame(censored[keys].drop_duplicates())
+        rows = rows[~pd.MultiIndex.from_frame(rows[keys]).isin(done)]
+        rows = pd.concat([rows, censored], ignore_index=True)
     rows["window"] = "whole-phase"
     rows["best"] = False
     rows["note"] = [_prefix(note) for note in rows["note"]]
     return rows.reset_index(drop=True)
+
+
+def _log_limit(phased: pd.DataFrame, settings: FitSettings) -> tuple[float, str]:
+    """ln of the detection limit and how it was chosen."""
+    if settings.detection_limit_mm3 > 0:
+        return float(np.log(settings.detection_limit_mm3)), "detection_limit_mm3"
+    volume = pd.to_numeric(phased["volume_mm3"], errors="coerce")
+    smallest = volume[volume > 0].min()
+    return float(np.log(smallest)) if np.isfinite(smallest) else np.nan, "smallest volume seen"
+
+
+def _censored_rows(widened: pd.DataFrame, names: tuple[str, ...], limit: tuple[float, str],
+                   settings: FitSettings) -> pd.DataFrame:
+    """Whole-phase rows of the series with unseen sessions, fitted with them left-censored."""
+    from pipeline.censored import fit_censored
+    from pipeline.laws import LAWS
+
+    log_limit, how = limit
+    usable = widened[widened["in_fit"].astype(bool)
+                     | widened["fit_exclusion"].astype(str).isin(_UNSEEN)]
+    out = []
+    if not np.isfinite(log_limit):
+        return pd.DataFrame()
+    for (subject, lesion, phase), part in usable.groupby(["subject", "lesion", "phase"]):
+        part = part.sort_values("day")
+        unseen = part["fit_exclusion"].astype(str).isin(_UNSEEN).to_numpy()
+        if not unseen.any() or (~unseen).sum() < 2:
+            continue
+        day = part["day"].to_numpy(float)
+        with np.errstate(divide="ignore"):
+            y = np.where(unseen, log_limit, np.log(part["volume_mm3"].to_numpy(float)))
+        days = ", ".join(f"{d:g}" for d in day[unseen])
+        for name in names:
+            law = LAWS[name]
+            if len(day) <= law.n_params:
+                continue
+            fit = fit_censored(law, day - day[0], y, unseen, log_limit, settings=settings)
+            out.append(_censored_row(law, fit, day, unseen) | {
+                "subject": subject, "lesion": lesion, "phase": phase,
+                "group": part["group"].iloc[0] if "group" in part else "all",
+                "note": f"left-censored: {unseen.sum()} session(s) not seen (days {days}) "
+                        f"entered as below {np.exp(log_limit):g} mm^3 ({how})"})
+    table = pd.DataFrame(out)
+    if len(table):                    # Akaike weights among the censored fits of one series
+        key = [table[k] for k in ("subject", "lesion", "phase")]
+        delta = table["aicc"] - table.groupby(key)["aicc"].transform("min")
+        weight = np.exp(-0.5 * delta)
+        table["akaike_weight"] = weight / weight.groupby(key).transform("sum")
+    return table
+
+
+def _censored_row(law, fit: dict, day: np.ndarray, unseen: np.ndarray) -> dict:
+    theta = np.asarray(fit["theta"], float)[None, :]
+    row = {"model": law.name, "n_points": len(day), "day_start": day[0], "day_end": day[-1],
+           "v0_mm3": float(np.exp(theta[0, 0])), "k_per_day": float(law.initial_rate(theta)[0]),
+           "aicc": fit["aicc"], "sigma_log": fit["sigma"], "df_resid": len(day) - law.n_params,
+           "status": "ok" if fit["ok"] else "failed", "first_absent_day": day[unseen][0]}
+    if law.derived is not None:
+        row |= {k: float(v[0]) for k, v in law.derived(theta).items()}
+    if "nadir_day_rel" in row:
+        row["nadir_day"] = day[0] + row.pop("nadir_day_rel")
+    return row
 
 
 def _prefix(note: object) -> str:
