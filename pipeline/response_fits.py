@@ -158,9 +158,11 @@ def _censored_row(law, fit: dict, day: np.ndarray, unseen: np.ndarray) -> dict:
 
 
 def _prefix(note: object) -> str:
+    """The whole-phase note; the ranking notes of the fits are dropped (best is false here)."""
     head = "whole post-event phase, shrinkage included (not ranked against the regrowth rows)"
     text = "" if note is None or (isinstance(note, float) and np.isnan(note)) else str(note)
-    return head + ("; " + text if text else "")
+    kept = [p for p in text.split("; ") if p and not p.startswith("best by fewest parameters")]
+    return "; ".join([head] + kept)
 
 
 def add_windows(fits: pd.DataFrame, phased: pd.DataFrame, *,
