@@ -383,11 +383,6 @@ def power_three_point(t: Array, log_v: Array) -> tuple[Array, Array, Array, Arra
     return (np.where(ok, lv[:, 0], nan), np.where(ok, k, nan), np.where(ok, 1.0 - u, nan), ok)
 
 
-def _register_response_laws() -> None:
-    """Add the response laws (regression-regrowth, von Bertalanffy with loss) to LAWS."""
-    from pipeline.response_laws import RESPONSE_LAWS
-
-    LAWS.update(RESPONSE_LAWS)
-
-
-_register_response_laws()
+# The response laws (regression-regrowth, von Bertalanffy with loss) add themselves to LAWS when
+# their module is imported; importing it here makes LAWS complete whichever module comes first.
+import pipeline.response_laws  # noqa: E402,F401

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.laws import Law, expm1_ratio, log1p_ratio
+from pipeline.laws import LAWS, Law, expm1_ratio, log1p_ratio
 from pipeline.settings import FitSettings
 
 Array = np.ndarray
@@ -181,3 +181,4 @@ RESPONSE_LAWS: dict[str, Law] = {
         "von Bertalanffy with a loss term (general Bertalanffy); Ghaffari Laleh et al. 2022",
         custom_bounds=_bl_bounds, custom_starts=_bl_starts, derived=_bl_derived),
 }
+LAWS.update(RESPONSE_LAWS)
