@@ -94,11 +94,13 @@ def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *
     lesion]. A lesion phase where no law could be fitted (fewer sessions than any law has
     parameters) has no row in fits.tsv (contract) but one in ``unfitted`` saying why."""
     from pipeline import groupfit, growth, phases
+    from pipeline.response_fits import add_windows
 
     table = longitudinal if "group" in longitudinal.columns else \
         longitudinal.assign(group="")
     phased = phases.assign_phases(table, events, settings=config.fitting)
-    fits = growth.fit_lesions(phased, settings=config.fitting)
+    fits = add_windows(growth.fit_lesions(phased, settings=config.fitting), phased,
+                       settings=config.fitting)       # + response laws over whole phases
     none = fits["model"] == "none"
     unfitted = fits.loc[none, [c for c in UNFITTED_COLUMNS if c in fits.columns]]
     return (fits[~none].reset_index(drop=True),

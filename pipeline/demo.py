@@ -84,7 +84,7 @@ def build_subject(index: int, *, seed: int) -> SubjectPlan:
                        days=days, grids=grids, lesions=lesions, events=events,
                        multilabel=opts["multilabel"],
                        broken_session=len(days) - 1 if opts.get("broken") else None,
-                       start_date=start)
+                       start_date=start, response=tuple(opts.get("response", ())))
     _place(rng, plan)
     _validate(plan)
     return plan
@@ -346,7 +346,9 @@ def _lesion_rows(plan: SubjectPlan, les: LesionPlan, ids: dict[str, int]) -> lis
 def subject_truth(plan: SubjectPlan, outcome: dict[tuple[str, int], str]) -> dict:
     """The truth of one subject: sessions, events, lesions (ids, laws, per-session rows)."""
     ids = plan.lesion_ids()
-    expected: dict[str, list] = {"splits": [], "merges": [], "new": [], "vanish": []}
+    expected: dict[str, list] = {"splits": [], "merges": [], "new": [], "vanish": [],
+                                 "response": [{"session": s, "category": c}
+                                              for s, c in zip(plan.sessions, plan.response)]}
     lesions = {}
     for les in sorted(plan.lesions, key=lambda item: ids[item.key]):
         lid, rows = ids[les.key], _lesion_rows(plan, les, ids)
@@ -384,9 +386,9 @@ def truth_document(plans: list[SubjectPlan], outcomes: pd.DataFrame, *, seed: in
     outcome = {(r.subject, int(r.lesion)): r.outcome for r in outcomes.itertuples()}
     subjects = {p.subject: subject_truth(p, outcome) for p in plans}
     expected: dict[str, list] = {"splits": [], "merges": [], "new": [], "vanish": [],
-                                 "errors": []}
+                                 "response": [], "errors": []}
     for name, doc in subjects.items():
-        for kind in ("splits", "merges", "new", "vanish"):
+        for kind in ("splits", "merges", "new", "vanish", "response"):
             expected[kind] += [{"subject": name, **item} for item in doc["expected"][kind]]
         expected["errors"] += [{"subject": name, "session": s["session"], "path": s["mask"]}
                                for s in doc["sessions"] if not s["readable"]]

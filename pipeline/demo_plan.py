@@ -157,6 +157,7 @@ class SubjectPlan:
     multilabel: bool
     broken_session: int | None
     start_date: dt.date
+    response: tuple[str, ...] = ()    # planned target-lesion category per session (or none)
 
     @property
     def sessions(self) -> list[str]:
@@ -240,13 +241,19 @@ def _merge(rng):
 
 
 def _new_lesion(rng):
-    """A new lesion appears at session 3; the first lesion responds to radiosurgery."""
+    """Radiosurgery of the first lesion: a partial response, a new lesion at session 5 while it
+    rests near its nadir (progression), then its own regrowth. The expected target-lesion
+    categories (RANO-BM arithmetic, Lin NU et al. Lancet Oncol 2015) are planned with margins:
+    the nadir volume is 8-12 % of baseline (diameter about -50 %, PR needs <= -30 %)."""
     u, days = rng.uniform, _days(rng, 6)
     e = days[2] + int(rng.integers(2, 11))
-    a = _grow("A", np.exp(u(np.log(300), np.log(900))), e, u(2, 3.5), u(1.3, 1.7))
-    a.then("after-radiosurgery", "decline", days[5], 1.0, fold=u(0.3, 0.5))
-    n = _grow("N", u(40, 110), days[5], u(4, 9), u(1.3, 1.8), first_day=days[2])
-    return days, [a, n], [(e, "radiosurgery", "A")], dict(multilabel=False)
+    a = _grow("A", u(600, 1000), e, u(2, 3), u(1.3, 1.7))
+    a.then("after-radiosurgery", "decline", days[3], 1.0, fold=u(0.08, 0.12))
+    a.then("after-radiosurgery", "decline", days[4], 1.0, fold=u(0.85, 0.95))
+    a.then("after-radiosurgery", "regrowth", days[5], u(0.6, 0.85), fold=u(5, 8))
+    n = _grow("N", u(60, 110), days[5], u(2, 4), u(1.3, 1.8), first_day=days[4])
+    response = ("n/a", "n/a", "baseline", "PR", "PD", "PD")
+    return days, [a, n], [(e, "radiosurgery", "A")], dict(multilabel=False, response=response)
 
 
 def _vanish(rng):

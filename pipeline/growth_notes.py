@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.laws import LAWS, Law
+from pipeline.response_fits import WINDOW_COLUMNS
 from pipeline.settings import FitSettings
 
 __all__ = ["COLUMNS", "finish_rows", "aicc"]
@@ -97,6 +98,7 @@ COLUMNS: dict[str, dict] = {
     "logistic_r_per_day": {"Description": "Logistic rate r.", "Units": "1/day"},
 }
 
+COLUMNS.update(WINDOW_COLUMNS)          # response laws' figures and the fitted window
 ORDER = list(COLUMNS)
 
 
@@ -143,6 +145,8 @@ def _law_columns(law: Law, theta: np.ndarray) -> dict[str, np.ndarray]:
         cols["capacity_mm3"] = np.where((c > 0) & np.isfinite(cap), cap, np.nan)
     elif law.name == "logistic":
         cols["logistic_r_per_day"], cols["capacity_mm3"] = k, np.exp(theta[:, 2])
+    if law.derived is not None:
+        cols.update(law.derived(theta))
     return cols
 
 
@@ -180,6 +184,8 @@ def _piece_frame(law: Law, n: int, ids: np.ndarray, day: np.ndarray, logv: np.nd
                           "beta_boot_high": res.get("beta_boot_high", nan),
                           "n_params": law.n_params})
     frame["singularity_day"] = frame["day_start"] + frame.pop("singularity_day_rel")
+    if "nadir_day_rel" in frame:
+        frame["nadir_day"] = frame["day_start"] + frame.pop("nadir_day_rel")
     frame["note"] = [[] for _ in range(m)]
     _fit_notes(frame, law, res, settings)
     if law.name == "power":
@@ -250,9 +256,9 @@ def _exclusion_notes(table: pd.DataFrame) -> pd.Series:
     out = table[~table["in_fit"].astype(bool)]
     if "fit_exclusion" not in out.columns or len(out) == 0:
         return pd.Series(dtype=object)
-    counts = out.groupby(["series", "fit_exclusion"]).size()
+    counts = out.groupby(["series", "fit_exclusion"])["day"].agg(_days_text)
     text = counts.reset_index().assign(
-        t=lambda d: d["fit_exclusion"].astype(str) + " " + d[0].astype(str))
+        t=lambda d: d["fit_exclusion"].astype(str) + " " + d["day"])
     return "sessions left out: " + text.groupby("series")["t"].agg(", ".join)
 
 
@@ -272,6 +278,12 @@ def _zero_residual(rows: pd.DataFrame, usable: pd.Series, settings: FitSettings)
     sigma = pd.to_numeric(rows["sigma_log"], errors="coerce") if "sigma_log" in rows else np.nan
     df = pd.to_numeric(rows["df_resid"], errors="coerce") if "df_resid" in rows else np.nan
     return usable & (df > 0) & (sigma < ZERO_SIGMA)
+
+
+def _days_text(days: pd.Series) -> str:
+    """``2 (days 130, 160)``: how many sessions were left out and which."""
+    shown = ", ".join(f"{float(d):g}" for d in days)
+    return f"{len(days)} (day{'s' if len(days) > 1 else ''} {shown})"
 
 
 def _choose_best(rows: pd.DataFrame, settings: FitSettings) -> pd.DataFrame:

@@ -92,6 +92,11 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
             columns=_contract_columns(name))
         write_table(table, out / f"{name}.tsv", columns=_contract_columns(name))
         write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
+    frames = [f for f in parts["assignment"] if len(f)]      # component -> lesion, for response
+    table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
+        columns=list(matching.ASSIGNMENT_COLUMNS))
+    write_table(table, out / "lesion_components.tsv", columns=tuple(matching.ASSIGNMENT_COLUMNS))
+    write_sidecar(out / "lesion_components.tsv", matching.ASSIGNMENT_COLUMNS)
 
 
 
@@ -246,6 +251,27 @@ def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> No
         write_table(shown[["subject", "day", "event", "lesion"]], out / "events.tsv",
                     columns=("subject", "day", "event", "lesion"))
         write_sidecar(out / "events.tsv", EVENT_COLUMNS)
+    if config.response.write:
+        _write_response(out, config=config, events=events)
+
+
+def _write_response(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
+    """response.tsv and response_subjects.tsv (target-lesion radiographic component only)."""
+    from pipeline import response
+
+    if not (out / "lesion_components.tsv").exists():
+        say(f"note: {out.name}: no lesion_components.tsv (run 'match' again); response.tsv "
+            "not written")
+        return
+    measures = response.lesion_measures(
+        read_table(out / "longitudinal.tsv"), read_table(out / "lesions.tsv"),
+        read_table(out / "lesion_components.tsv"))
+    table = response.assess_response(measures, events, settings=config.response)
+    for name, rows, doc in (("response", table, response.COLUMNS),
+                            ("response_subjects", response.summarize_response(table),
+                             response.SUMMARY_COLUMNS)):
+        write_table(rows, out / f"{name}.tsv", columns=tuple(doc))
+        write_sidecar(out / f"{name}.tsv", doc)
 
 
 def load_provenance(out: Path) -> dict:

@@ -33,7 +33,7 @@ from pipeline.settings import FitSettings
 
 Array = np.ndarray
 
-__all__ = ["Law", "LAWS", "power_three_point", "log1p_ratio", "expm1_ratio"]
+__all__ = ["Law", "LAWS", "RESPONSE_MODELS", "power_three_point", "log1p_ratio", "expm1_ratio"]
 
 
 def log1p_ratio(x: Array) -> Array:
@@ -228,6 +228,11 @@ class Law:
         (the power law's beta is its third parameter).
     source : str
         Where the closed form comes from.
+    custom_bounds, custom_starts : callable, optional
+        A law's own :meth:`bounds` and :meth:`starts` (same signatures), for laws added outside
+        this module (:mod:`pipeline.response_laws`).
+    derived : callable, optional
+        ``theta (M, p) -> {column: (M,)}``: the law's own figures for ``fits.tsv``.
     """
 
     name: str
@@ -239,6 +244,9 @@ class Law:
     initial_rate: Callable[[Array], Array]
     beta: float | None
     source: str
+    custom_bounds: Callable[[Array, Array, FitSettings], tuple[Array, Array]] | None = None
+    custom_starts: Callable[[Array, Array, Array, Array], list[Array]] | None = None
+    derived: Callable[[Array], dict[str, Array]] | None = None
 
     @property
     def n_params(self) -> int:
@@ -253,6 +261,8 @@ class Law:
         ``beta_bounds``; the logistic capacity between ``e^-5`` times the smallest and ``e^10``
         times the largest volume.
         """
+        if self.custom_bounds is not None:
+            return self.custom_bounds(y_low, y_high, settings)
         rate = settings.max_rate_per_day
         lo = [y_low - 5.0, np.full_like(y_low, -rate)]
         hi = [y_high + 5.0, np.full_like(y_low, rate)]
@@ -272,6 +282,8 @@ class Law:
 
         ``span`` is the window length in days; ``y_high`` the largest observed log-volume.
         """
+        if self.custom_starts is not None:
+            return self.custom_starts(intercept, slope, span, y_high)
         span = np.maximum(span, 1e-9)
         if self.name == "exponential":
             return [np.stack([intercept, slope], -1)]
@@ -312,6 +324,8 @@ LAWS: dict[str, Law] = {
                    _surface_log_volume, _surface_rhs, _surface_gain_time, _initial_rate_k,
                    2.0 / 3.0, "surface-limited growth, radius linear in time; Bru et al. 2003"),
 }
+
+RESPONSE_MODELS = ("regression_regrowth", "bertalanffy_loss")   # defined in response_laws
 
 
 def power_three_point(t: Array, log_v: Array) -> tuple[Array, Array, Array, Array]:
@@ -367,3 +381,8 @@ def power_three_point(t: Array, log_v: Array) -> tuple[Array, Array, Array, Arra
     k = (lv[:, 2] - lv[:, 0]) * expm1_ratio(u * (lv[:, 2] - lv[:, 0])) / span
     nan = np.full(len(t), np.nan)
     return (np.where(ok, lv[:, 0], nan), np.where(ok, k, nan), np.where(ok, 1.0 - u, nan), ok)
+
+
+# The response laws (regression-regrowth, von Bertalanffy with loss) add themselves to LAWS when
+# their module is imported; importing it here makes LAWS complete whichever module comes first.
+import pipeline.response_laws  # noqa: E402,F401

@@ -18,13 +18,19 @@ Which sessions enter the fits (``in_fit``), and why not (``fit_exclusion``):
   left out in their ``note``;
 - ``missing``: no volume (``n/a``) for any other reason;
 - ``before-nadir``: in a phase after an event, with ``FitSettings.from_nadir`` (default), the
-  sessions before the phase's smallest volume (the nadir; an absent session counts as volume 0;
-  the latest of equal minima) are left out, so the fit describes the regrowth, not the response.
+  sessions before the phase's nadir are left out, so the fit describes the regrowth, not the
+  response. The nadir is the **earliest** session whose volume lies within the measurement
+  noise of the phase's smallest volume: V <= V_min exp(z sqrt(2) sigma), with sigma the
+  ln-volume SD (``measurement_error``, else ``nadir_noise_sd``) and z the normal quantile of
+  ``confidence`` (two-sided): the largest difference two measurements of one volume show at
+  that level (common practice). A lesion that simply keeps growing thus loses no session to
+  noise. An absent session counts as volume 0 (then only absent sessions are at the nadir).
 """
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from pipeline.errors import UsageError
 from pipeline.settings import FitSettings
@@ -47,7 +53,9 @@ COLUMNS: dict[str, dict] = {
                    "missing": "no volume recorded",
                    "merged": "lesion absorbed by another lesion at this session",
                    "merged-sum": "volume is the sum after a merge (fit_merged_sum is false)",
-                   "before-nadir": "before the nadir of a post-treatment phase (from_nadir)"}},
+                   "before-nadir": "before the nadir of a post-treatment phase (from_nadir; "
+                                   "the earliest session within measurement noise of the "
+                                   "smallest volume)"}},
 }
 
 _LONGITUDINAL = ("subject", "lesion", "day", "volume_mm3")
@@ -124,7 +132,19 @@ def _exclusions(table: pd.DataFrame, settings: FitSettings) -> np.ndarray:
     return reason
 
 
-def _nadir_rule(table: pd.DataFrame, reason: np.ndarray) -> np.ndarray:
+def nadir_tolerance(settings: FitSettings) -> float:
+    """ln of the factor above the smallest volume that still counts as the nadir.
+
+    Examples
+    --------
+    >>> round(nadir_tolerance(FitSettings()), 4)          # 1.96 * sqrt(2) * 0.1
+    0.2772
+    """
+    sigma = settings.measurement_error or settings.nadir_noise_sd
+    return float(stats.norm.ppf(0.5 * (1.0 + settings.confidence)) * np.sqrt(2.0) * sigma)
+
+
+def _nadir_rule(table: pd.DataFrame, reason: np.ndarray, settings: FitSettings) -> np.ndarray:
     """Mark sessions before the nadir of every post-treatment (subject, lesion, phase)."""
     reason = reason.copy()
     volume = pd.to_numeric(table["volume_mm3"], errors="coerce").to_numpy(float)
@@ -142,10 +162,11 @@ def _nadir_rule(table: pd.DataFrame, reason: np.ndarray) -> np.ndarray:
     work = work.sort_values(["subject", "lesion", "phase", "day", "row"], kind="stable")
     groups = work.groupby(["subject", "lesion", "phase"], sort=False)
     position = groups.cumcount().to_numpy()
-    is_min = (work["value"] == groups["value"].transform("min")).to_numpy()
-    nadir = pd.Series(np.where(is_min, position, -1), index=work.index).groupby(
-        [work["subject"], work["lesion"], work["phase"]], sort=False).transform("max").to_numpy()
-    rows = work["row"].to_numpy()[position < nadir]       # latest of equal minima is the nadir
+    low = groups["value"].transform("min") * np.exp(nadir_tolerance(settings))
+    near = (work["value"] <= low).to_numpy()
+    nadir = pd.Series(np.where(near, position, len(work)), index=work.index).groupby(
+        [work["subject"], work["lesion"], work["phase"]], sort=False).transform("min").to_numpy()
+    rows = work["row"].to_numpy()[position < nadir]       # earliest session near the minimum
     reason[rows[reason[rows] == ""]] = "before-nadir"
     return reason
 
@@ -195,7 +216,7 @@ def assign_phases(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None
     out["phase"] = phase
     reason = _exclusions(out, settings)
     if settings.from_nadir:
-        reason = _nadir_rule(out, reason)
+        reason = _nadir_rule(out, reason, settings)
     out["fit_exclusion"] = reason
     out["in_fit"] = reason == ""
     return out

@@ -96,6 +96,9 @@ class FitSettings:
     confidence: float = 0.95          # level of beta and forecast intervals (0-1)
     max_beta_ci_width: float = 1.0    # wider beta interval -> note 'not pinned down' (unit-free)
     from_nadir: bool = True           # after an event, fit from the phase's nadir on (regrowth)
+    nadir_noise_sd: float = 0.1       # ln-volume SD of the nadir tolerance if measurement_error=0
+    response_models: tuple[str, ...] = (  # laws fitted over whole post-event phases (shrinkage)
+        "regression_regrowth", "bertalanffy_loss")
     fit_merged_sum: bool = False      # fit a survivor's rows after a merge (summed volume)
     detection_limit_mm3: float = 0.0  # volumes in (0, this] are left out (mm^3)
     forecast_days: float = 90.0       # horizon after the last fitted session (days, 0-1826)
@@ -108,11 +111,15 @@ class FitSettings:
         bad = [k for k, v in numbers.items() if v != v or v in (float("inf"), -float("inf"))]
         _require(not bad, f"{', '.join(bad)} must be a finite number")
         _require(len(self.models) > 0, "models must name at least one law")
-        known = ("power", "exponential", "gompertz", "logistic", "surface")
+        known = ("power", "exponential", "gompertz", "logistic", "surface",
+                 "regression_regrowth", "bertalanffy_loss")
         unknown = [m for m in self.models if m not in known]
         _require(not unknown, f"unknown growth law(s) {unknown}; choose from {list(known)}")
         repeated = sorted({m for m in self.models if self.models.count(m) > 1})
         _require(not repeated, f"models names {repeated} more than once; name each law once")
+        odd = [m for m in self.response_models if m not in known]
+        _require(not odd, f"unknown response law(s) {odd}; choose from {list(known)}")
+        _require(self.nadir_noise_sd >= 0, "nadir_noise_sd must be >= 0")
         _require(len(self.beta_bounds) == 2 and self.beta_bounds[0] < 1.0 < self.beta_bounds[1],
                  f"beta_bounds must be (low, high) with low < 1 < high, got {self.beta_bounds}")
         _require(self.max_rate_per_day > 0, "max_rate_per_day must be > 0")
@@ -126,6 +133,24 @@ class FitSettings:
                  f"law fitted to months of follow-up says nothing further), got "
                  f"{self.forecast_days:g}")
         _require(self.bootstrap >= 0, "bootstrap must be >= 0 (0 = off)")
+
+
+# ---- response: owned by pipeline/response.py's authors; edit only this class ----
+@dataclass(frozen=True)
+class ResponseSettings:
+    """Target-lesion radiographic response (response.tsv); research use only."""
+
+    write: bool = True                # fit and run write response.tsv and response_subjects.tsv
+    max_targets: int = 5              # target lesions chosen at baseline (RANO-BM: up to 5)
+    absolute_rule: str = "lesion"     # PD also needs 'lesion' (one target, RANO-BM) or 'sum'
+    #                                   (RECIST 1.1) grown by absolute_mm
+    absolute_mm: float = 5.0          # absolute growth of progression (mm)
+
+    def __post_init__(self) -> None:
+        _require(self.max_targets >= 1, "max_targets must be >= 1")
+        _require(self.absolute_rule in ("lesion", "sum"),
+                 f"absolute_rule must be 'lesion' or 'sum', got {self.absolute_rule!r}")
+        _require(self.absolute_mm >= 0, "absolute_mm must be >= 0")
 
 
 # ---- report: owned by pipeline/report.py's authors; edit only this class ----

@@ -50,3 +50,17 @@ def test_demo_truth_split_merge_new_vanish(demo):
         status = dict(zip(track.session, track.status))
         assert all(status[s] == "absent" for s in gone["absent_sessions"])
         assert status[gone["returns_session"]] == "present"
+
+
+def test_demo_response_categories_match_the_planned_story(demo):
+    # Reference: the generator's planned target-lesion categories (volume folds chosen with
+    # margins against the RANO-BM thresholds, Lin NU et al. Lancet Oncol 2015), not the tool's
+    # own output
+    out, _, truth = demo
+    planned = truth["expected"]["response"]
+    assert planned, "the demo has a response story"
+    response = read_table(out / "response.tsv")
+    response["category"] = response["category"].fillna("n/a")     # n/a is read back as missing
+    got = {(r.subject, r.session): r.category for r in response.itertuples()}
+    for item in planned:
+        assert got[(item["subject"], item["session"])] == item["category"], item
