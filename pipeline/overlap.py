@@ -130,8 +130,10 @@ def scan_geometry(scan: LabelledScan, rows: pd.DataFrame, *,
     slices = ndimage.find_objects(comps) if comps.size else []
     offset = np.asarray(scan.offset)
     voxels, boxes, ref_boxes, centroids, radii, volumes = {}, {}, {}, {}, {}, {}
-    for row in rows.itertuples(index=False):
-        c = int(row.component)
+    columns = [rows[name].to_numpy() for name in ("component", "volume_mm3", "centroid_x_mm",
+                                                   "centroid_y_mm", "centroid_z_mm")]
+    for component, volume, *point in zip(*(column.tolist() for column in columns)):
+        c = int(component)
         box = slices[c - 1] if c - 1 < len(slices) else None
         if box is None:
             raise ValueError(f"component {c} is listed but absent from the scan's image")
@@ -142,9 +144,8 @@ def scan_geometry(scan: LabelledScan, rows: pd.DataFrame, *,
         voxels[c] = int(counts[c])
         boxes[c] = (lo, hi)
         ref_boxes[c] = (world.min(axis=0), world.max(axis=0))
-        point = np.array([row.centroid_x_mm, row.centroid_y_mm, row.centroid_z_mm], float)
-        centroids[c] = _apply(to_ref, point[None])[0]
-        volumes[c] = float(row.volume_mm3)
+        centroids[c] = _apply(to_ref, np.array(point, float)[None])[0]
+        volumes[c] = float(volume)
         radii[c] = equivalent_radius(volumes[c])
     return ScanGeometry(scan, vox2ref, voxels, boxes, ref_boxes, centroids, radii, volumes)
 

@@ -213,13 +213,13 @@ def _remove_stale_temporaries(out: Path) -> None:
 
 
 def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
-                  corrections: pd.DataFrame | None, corrections_path: Path | None
-                  ) -> tuple[list[dict], dict[str, Path | None]]:
+                  corrections: pd.DataFrame | None, corrections_path: Path | None,
+                  workers: int = 1) -> tuple[list[dict], dict[str, Path | None]]:
     """Stages 2 and 3 and the report after stage 1; returns new error rows and files used."""
     from pipeline.later_stages import run_fitting, run_matching
 
     errors: list[dict] = []
-    errors += run_matching(stage, out, config=config, corrections=corrections)
+    errors += run_matching(stage, out, config=config, corrections=corrections, workers=workers)
     run_fitting(out, config=config, events=_events(events, stage, errors, out))
     return errors, {"events": events, "corrections": corrections_path}
 
@@ -238,7 +238,8 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
                             progress=Progress("masks", quiet=quiet))
         _report_stage1(stage)
         errors, files = _later_stages(stage, out, config=config, events=events,
-                                      corrections=table, corrections_path=corrections)
+                                      corrections=table, corrections_path=corrections,
+                                      workers=workers)
         write_errors(stage.errors + errors, out)
         write_dataset_description(out)
         report = _report(out, config)
@@ -282,7 +283,7 @@ def _final_lines(out: Path, stage: Stage1, errors: list[dict], report: Path | No
     say(DISCLAIMER)
 
 
-def _rebuild_stage1(out: Path, config: Config) -> tuple[Stage1, dict]:
+def _rebuild_stage1(out: Path, config: Config, workers: int = 1) -> tuple[Stage1, dict]:
     """Stage 1 of an earlier run, from its inputs and cache, without rewriting its tables."""
     from pipeline.later_stages import load_provenance
 
@@ -291,7 +292,7 @@ def _rebuild_stage1(out: Path, config: Config) -> tuple[Stage1, dict]:
     if not source.exists():
         raise UsageError(f"{out}: the input of the earlier run ({source}) is not reachable from "
                          "here; run from the same folder, or rerun 'lesion-growth run'")
-    stage = run_volumes(source, out, config=config, write=False)
+    stage = run_volumes(source, out, config=config, write=False, workers=workers)
     return stage, provenance
 
 
@@ -299,14 +300,15 @@ def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
     return [e for e in read_errors(out) if e.get("stage") not in stages]
 
 
-def match_only(out: Path, *, config: Config, corrections: Path | None = None) -> int:
+def match_only(out: Path, *, config: Config, corrections: Path | None = None,
+               workers: int = 1) -> int:
     """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections)."""
     from pipeline.later_stages import run_matching
 
     with locked(out):
-        stage, _ = _rebuild_stage1(out, config)
+        stage, _ = _rebuild_stage1(out, config, workers)
         errors = run_matching(stage, out, config=config,
-                              corrections=_read_corrections(corrections))
+                              corrections=_read_corrections(corrections), workers=workers)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
         _refresh_report(out, config)
