@@ -283,9 +283,12 @@ def _link_sessions(geoms: list[ScanGeometry], settings: MatchSettings) -> _Step:
                               max(parents, key=lambda lab: (last_volume[lab], -lab)))
         present = {lesion_of[key] for key in current}
         dead |= {lesion_of[link.src] for link in new if lesion_of[link.src] not in present}
+        comps_of: dict[int, list[CompKey]] = defaultdict(list)   # one pass, current's order
+        for key in current:
+            comps_of[lesion_of[key]].append(key)
         for lesion in present:
             last_seen[lesion] = t
-            last_comps[lesion] = [key for key in current if lesion_of[key] == lesion]
+            last_comps[lesion] = comps_of[lesion]
         links.extend(new)
     return _Step(lesion_of, links, pairs, unmatched)
 

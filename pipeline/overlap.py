@@ -34,6 +34,7 @@ all in RAS+ millimetres.
 """
 from __future__ import annotations
 
+import functools
 import itertools
 from dataclasses import dataclass
 
@@ -66,10 +67,15 @@ class ScanGeometry:
     radii: dict[int, float]
     volumes: dict[int, float]
 
-    @property
+    @functools.cached_property
     def voxel_volume_mm3(self) -> float:
         """Volume of one voxel (mm3)."""
         return float(abs(np.linalg.det(self.scan.affine[:3, :3])))
+
+    @functools.cached_property
+    def ref2vox(self) -> np.ndarray:
+        """Inverse of ``vox2ref`` (computed once per scan, not once per pair)."""
+        return np.linalg.inv(self.vox2ref)
 
 
 @dataclass(frozen=True)
@@ -131,7 +137,8 @@ def scan_geometry(scan: LabelledScan, rows: pd.DataFrame, *,
     offset = np.asarray(scan.offset)
     voxels, boxes, ref_boxes, centroids, radii, volumes = {}, {}, {}, {}, {}, {}
     columns = [rows[name].to_numpy() for name in ("component", "volume_mm3", "centroid_x_mm",
-                                                   "centroid_y_mm", "centroid_z_mm")]
+                                                   "centroid_y_mm", "centroid_z_mm")] \
+        if len(rows) else [np.zeros(0)] * 5
     for component, volume, *point in zip(*(column.tolist() for column in columns)):
         c = int(component)
         box = slices[c - 1] if c - 1 < len(slices) else None
@@ -168,7 +175,7 @@ def labels_at(geometry: ScanGeometry, ijk: np.ndarray) -> np.ndarray:
 
 def label_at_point(geometry: ScanGeometry, point: np.ndarray) -> int:
     """Component number at a reference-world point (nearest voxel), 0 for background."""
-    ijk = np.floor(_apply(np.linalg.inv(geometry.vox2ref), np.asarray(point)[None]) + 0.5)
+    ijk = np.floor(_apply(geometry.ref2vox, np.asarray(point)[None]) + 0.5)
     return int(labels_at(geometry, ijk)[0])
 
 
@@ -179,7 +186,7 @@ def component_on_grid(src: ScanGeometry, component: int, dst: ScanGeometry) -> n
     """
     lo, hi = src.boxes[component]
     offset = np.asarray(src.scan.offset)
-    src_to_dst = np.linalg.inv(dst.vox2ref) @ src.vox2ref
+    src_to_dst = dst.ref2vox @ src.vox2ref
     corners = _apply(src_to_dst, (offset + lo - 0.5) + _CORNERS * (hi - lo + 1))
     first = np.ceil(corners.min(axis=0) - 1e-9).astype(np.int64)
     last = np.floor(corners.max(axis=0) + 1e-9).astype(np.int64)
