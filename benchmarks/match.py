@@ -12,8 +12,9 @@ Two kinds of invented cohort, each timed as whole commands in fresh processes, i
   mask holding three well-separated growing spheres.
 
 For each cohort ``volumes MANIFEST -o OUT --workers W`` is timed, then ``match OUT --workers W``
-(which rebuilds stage 1 from the per-scan cache, then links, reviews and writes tracks/). The
-ratio match / volumes is the figure (goal: at most 1). ``--keep DIR`` keeps the cohorts and
+(which rebuilds stage 1 from the per-scan cache, then links, reviews and writes tracks/), then
+stage 1 and stage 2 alone in this process (no start-up, no rebuild). The ratios match / volumes
+and stage 2 / stage 1 are the figures (goal: at most 1). ``--keep DIR`` keeps the cohorts and
 outputs (``DIR/<cohort>/``) so that another version of the tool can be run on them and compared
 with ``benchmarks/compare_outputs.py``. Figures, not a test: nothing asserts speed.
 """
@@ -29,6 +30,8 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 
 def _save(path: Path, data: np.ndarray) -> None:
@@ -110,9 +113,30 @@ def measure(name: str, manifest: Path, workers: int) -> tuple[float, float]:
     stage2 = _in(manifest.parent, ["match", "out", "--workers", str(workers)])
     rows = sum(1 for _ in open(out / "lesions.tsv")) - 1
     links = sum(1 for _ in open(out / "matches.tsv")) - 1
-    print(f"  {name}: {rows} components, {links} links; volumes {stage1:.2f} s, "
+    print(f"  {name}: {rows} components, {links} links; commands: volumes {stage1:.2f} s, "
           f"match {stage2:.2f} s, match/volumes {stage2 / stage1:.2f}", flush=True)
+    alone1, alone2 = _stages_alone(manifest, workers)
+    print(f"  {name}: stages alone in one process: stage 1 {alone1:.2f} s, stage 2 "
+          f"{alone2:.2f} s, stage 2/stage 1 {alone2 / alone1:.2f}", flush=True)
     return stage1, stage2
+
+
+def _stages_alone(manifest: Path, workers: int) -> tuple[float, float]:
+    """Stage 1 (``run_volumes``, no cache: a new OUT) and stage 2 (``run_matching``) timed in
+    this process, without interpreter start-up or the rebuild of stage 1 that ``match`` does."""
+    from pipeline.config import load_config
+    from pipeline.later_stages import run_matching
+    from pipeline.runner import run_volumes
+
+    out = manifest.parent / "out-alone"
+    if out.exists():
+        shutil.rmtree(out)
+    config = load_config()
+    t0 = time.perf_counter()
+    stage = run_volumes(manifest, out, config=config, workers=workers)
+    t1 = time.perf_counter()
+    run_matching(stage, out, config=config, corrections=None, workers=workers)
+    return t1 - t0, time.perf_counter() - t1
 
 
 def _in(folder: Path, args: list[str]) -> float:

@@ -104,22 +104,38 @@ def session_evidence(geoms: Sequence[ScanGeometry], frontier: Sequence[CompKey],
                      current: Sequence[CompKey], settings: MatchSettings
                      ) -> dict[tuple[CompKey, CompKey], Evidence]:
     """The evidence of every candidate pair (frontier component, current component), in frontier
-    then current order; pairs that fail the gate are left out."""
+    then current order; pairs that fail the gate are left out.
+
+    Pairs within the reach bound are screened first, all at once: a pair whose world boxes do
+    not meet and that is too far by both distance gates (with a rounding slack) cannot be a
+    candidate, so only the others are scored by ``pair_evidence``, which decides exactly."""
     if not frontier or not current:
         return {}
-
-    def points(keys: Sequence[CompKey]) -> tuple[np.ndarray, np.ndarray]:
-        return (np.array([geoms[s].centroids[c] for s, c in keys], float),
-                np.array([reach_mm(geoms[s], c, settings) for s, c in keys], float))
-
-    pairs = close_pairs(*points(frontier), *points(current))
+    a, b = _arrays(geoms, frontier, settings), _arrays(geoms, current, settings)
+    pairs = close_pairs(a["centroid"], a["reach"], b["centroid"], b["reach"])
+    i, j = pairs[:, 0], pairs[:, 1]
+    gap = np.linalg.norm(a["centroid"][i] - b["centroid"][j], axis=1)
+    radius = np.maximum(np.maximum(a["radius"][i], b["radius"][j]), settings.min_radius_mm)
+    loose = 1 + 1e-7
+    near = (gap <= settings.max_distance_mm * loose + _SLACK_MM) \
+        & (gap <= settings.max_distance_ratio * radius * loose + _SLACK_MM)
+    meet = np.all((a["lo"][i] <= b["hi"][j]) & (b["lo"][j] <= a["hi"][i]), axis=1)
     out = {}
-    for i, j in pairs.tolist():
-        f, k = frontier[i], current[j]
+    for m, n in pairs[near | meet].tolist():
+        f, k = frontier[m], current[n]
         evidence = pair_evidence(geoms[f[0]], f[1], geoms[k[0]], k[1], settings=settings)
         if evidence.candidate:
             out[(f, k)] = evidence
     return out
+
+
+def _arrays(geoms: Sequence[ScanGeometry], keys: Sequence[CompKey],
+            settings: MatchSettings) -> dict[str, np.ndarray]:
+    return {"centroid": np.array([geoms[s].centroids[c] for s, c in keys], float),
+            "reach": np.array([reach_mm(geoms[s], c, settings) for s, c in keys], float),
+            "radius": np.array([geoms[s].radii[c] for s, c in keys], float),
+            "lo": np.array([geoms[s].ref_boxes[c][0] for s, c in keys], float),
+            "hi": np.array([geoms[s].ref_boxes[c][1] for s, c in keys], float)}
 
 
 def sparse_assignment(n_rows: int, n_cols: int, costs: Mapping[tuple[int, int], float]

@@ -3,10 +3,13 @@
 For each session in time order, every component is compared with the *frontier* of earlier
 components: the components of each live lesion at the last session it was seen, provided it has
 been absent for at most ``max_gap`` sessions. Comparison is in world space (``pipeline.overlap``,
-which documents the score and the gate). One-to-one continuations come from the optimal
-assignment (``scipy.optimize.linear_sum_assignment``) on ``1 - score``, forbidden pairs carrying
-a large finite cost and dropped afterwards. A component left unassigned that overlaps (or holds
-the centroid of) a frontier component joins that lesion: a split. A component of the previous
+which documents the score and the gate); only pairs that can pass the gate are scored, found with
+a spatial index (``pipeline.candidates``), and only candidate pairs are kept, so work and memory
+grow with the close pairs, not with the product of the component counts. One-to-one
+continuations come from the optimal assignment (``scipy.optimize.linear_sum_assignment``) on
+``1 - score``, forbidden pairs carrying a large finite cost and dropped afterwards (solved per
+connected part of the candidate graph when large). A component left unassigned that overlaps (or
+holds the centroid of) a frontier component joins that lesion: a split. A component of the previous
 session left unassigned that overlaps a current component flows into it: a merge, whose survivor
 is the parent lesion larger at its last session. Ids, statuses and corrections follow
 ``pipeline.tracks``.
