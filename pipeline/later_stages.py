@@ -25,7 +25,6 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
     run by the executors of stage 1 (``workers`` as for ``volumes``); the tables are put together
     in subject order, so they do not depend on the number of workers."""
     from pipeline.batch import run_tasks
-    from pipeline.stage2_tasks import SubjectJob, match_task
 
     errors: list[dict] = []
     groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
@@ -35,24 +34,8 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
             errors.append({"subject": row.subject, "session": row.session, "path": "",
                            "stage": "match", "reason": f"corrections.tsv line {index + 2}: "
                            f"subject {row.subject!r} is not in the input"})
-    labelled = _labelled_by_subject(stage)
-    rows_of = dict(iter(stage.lesions.groupby("subject", sort=False))) \
-        if len(stage.lesions) else {}
-    mine_of = {} if corrections is None else dict(iter(corrections.groupby("subject",
-                                                                             sort=False)))
-    empty = stage.lesions.iloc[:0]
-    images = {(s.subject, s.session): s.image_path for s in stage.scans}
-    subjects = [subject for subject in sorted(known) if labelled.get(subject)]
-    jobs = []
-    for subject in subjects:
-        scans = labelled[subject]
-        mine = None if corrections is None else mine_of.get(subject, corrections.iloc[:0])
-        writes = tuple(_track_write(stage, out, scan) for scan in scans)
-        job = SubjectJob(subject, scans, rows_of.get(subject, empty), mine, config.matching,
-                         {s.session: images.get((subject, s.session)) for s in scans}, writes)
-        jobs.append((match_task, (subject, "", f"subject {subject}", job)))
-    (out / "tracks").mkdir(parents=True, exist_ok=True)
-    outcomes = dict(run_tasks(jobs, workers=workers))
+    subjects, jobs = _subject_jobs(stage, out, sorted(known), config, corrections)
+    outcomes = dict(run_tasks(jobs, workers=workers if len(jobs) > 1 else 1))   # no pool for one
     parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": []}
     registrations: list[dict] = []
     for index, subject in enumerate(subjects):
@@ -79,6 +62,30 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
                     out / "registration.tsv", columns=tuple(REGISTRATION_COLUMNS))
         write_sidecar(out / "registration.tsv", REGISTRATION_COLUMNS)
     return errors
+
+
+def _subject_jobs(stage: Stage1, out: Path, known: list[str], config: Config,
+                  corrections: pd.DataFrame | None) -> tuple[list[str], list[tuple]]:
+    """The subjects with scans to match and one ``run_tasks`` task for each."""
+    from pipeline.stage2_tasks import SubjectJob, match_task
+
+    labelled = _labelled_by_subject(stage)
+    rows_of = dict(iter(stage.lesions.groupby("subject", sort=False))) \
+        if len(stage.lesions) else {}
+    mine_of = {} if corrections is None else dict(iter(corrections.groupby("subject",
+                                                                             sort=False)))
+    empty = stage.lesions.iloc[:0]
+    images = {(s.subject, s.session): s.image_path for s in stage.scans}
+    subjects = [subject for subject in known if labelled.get(subject)]
+    jobs = []
+    for subject in subjects:
+        scans = labelled[subject]
+        mine = None if corrections is None else mine_of.get(subject, corrections.iloc[:0])
+        writes = tuple(_track_write(stage, out, scan) for scan in scans)
+        job = SubjectJob(subject, scans, rows_of.get(subject, empty), mine, config.matching,
+                         {s.session: images.get((subject, s.session)) for s in scans}, writes)
+        jobs.append((match_task, (subject, "", f"subject {subject}", job)))
+    return subjects, jobs
 
 
 def _labelled_by_subject(stage: Stage1) -> dict[str, list[LabelledScan]]:
