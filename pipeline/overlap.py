@@ -243,7 +243,8 @@ def _dice_same_grid(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) 
 def _boxes_meet(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) -> bool:
     lo_a, hi_a = a.ref_boxes[comp_a]
     lo_b, hi_b = b.ref_boxes[comp_b]
-    return bool(np.all(lo_a <= hi_b) and np.all(lo_b <= hi_a))
+    return all(x <= y for x, y in zip(lo_a.tolist(), hi_b.tolist())) \
+        and all(x <= y for x, y in zip(lo_b.tolist(), hi_a.tolist()))
 
 
 def pair_evidence(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int, *,
