@@ -28,7 +28,8 @@ OutOpt = typer.Option(..., "-o", "--out", help="Output folder.")
 OutArg = typer.Argument(..., help="Output folder of an earlier run.")
 ConfigOpt = typer.Option(None, "--config", help="TOML file overriding configs/default.toml.")
 WorkersOpt = typer.Option(1, "--workers", min=0,
-                          help="Processes for reading masks (0 = all cores).")
+                          help="Processes for reading masks and matching subjects "
+                          "(0 = all cores).")
 SchedulerOpt = typer.Option(None, "--scheduler", help="Address of a Dask distributed scheduler "
                             "(needs lesion-growth[dask]).")
 QuietOpt = typer.Option(False, "--quiet", "-q", help="No progress display.")
@@ -120,12 +121,14 @@ def volumes(input: Path = InputArg, out: Path = OutOpt, config: Path | None = Co
 @app.command(epilog=EPILOG)
 @_guard
 def match(out: Path = OutArg, corrections: Path | None = CorrectionsOpt,
-          config: Path | None = ConfigOpt) -> None:
+          config: Path | None = ConfigOpt, workers: int = WorkersOpt) -> None:
     """Stage 2 alone: matches.tsv, longitudinal.tsv and tracks/ from lesions.tsv in OUT."""
     from pipeline.workflow import match_only
 
     check_out(out, earlier_run=True)
-    raise typer.Exit(match_only(out, config=_config(config), corrections=corrections))
+    _start_pool(workers, None)
+    raise typer.Exit(match_only(out, config=_config(config), corrections=corrections,
+                                workers=workers))
 
 
 @app.command(epilog=EPILOG)

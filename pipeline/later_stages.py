@@ -8,26 +8,27 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Config
-from pipeline.errors import InputError, UsageError
+from pipeline.errors import UsageError
 from pipeline.runner import Stage1, say
 from pipeline.tables import read_table, write_sidecar, write_table
 from pipeline.naming import track_path
+from pipeline.settings import MatchSettings
 from pipeline.sidecars import EVENT_COLUMNS, REGISTRATION_COLUMNS
 from pipeline.volumes import LabelledScan
 
 
 def run_matching(stage: Stage1, out: Path, *, config: Config,
-                 corrections: pd.DataFrame | None,
-                 corrections_path: Path | None = None) -> list[dict]:
+                 corrections: pd.DataFrame | None, corrections_path: Path | None = None,
+                 workers: int = 1) -> list[dict]:
     """Stage 2 for every subject; writes matches.tsv, longitudinal.tsv, tracks/. Returns errors.
 
-    Errors about corrections name ``corrections_path`` (the file as given) and its line."""
-    from pipeline import matching
-    from pipeline.io import save_label_image
+    Subjects are independent: each is one task (match, optional registration, its track images)
+    run by the executors of stage 1 (``workers`` as for ``volumes``); the tables are put together
+    in subject order, so they do not depend on the number of workers. Errors about corrections
+    name ``corrections_path`` (the file as given) and its line."""
+    from pipeline.batch import run_tasks
 
     errors: list[dict] = []
-    parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": [], "assignment": []}
-    registrations: list[dict] = []
     groups = dict(zip(stage.masks.subject, stage.masks.group)) if len(stage.masks) else {}
     known = {s.subject for s in stage.scans}
     given = "" if corrections_path is None else str(corrections_path)
@@ -37,42 +38,28 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
             errors.append({"subject": row.subject, "session": row.session, "path": given,
                            "stage": "match", "reason": f"{source} line {index + 2}: "
                            f"subject {row.subject!r} is not in the input"})
-    for subject in sorted(known):
-        scans = stage.labelled(subject)
-        if not scans:
-            continue
-        rows = stage.lesions[stage.lesions.subject == subject]
-        mine = None if corrections is None else corrections[corrections.subject == subject]
-        try:
-            transforms = _register(stage, subject, scans, config, registrations) \
-                if config.matching.register else None
-            try:
-                result = matching.match_subject(scans, rows, settings=config.matching,
-                                                corrections=mine, transforms=transforms,
-                                                corrections_source=source)
-            except InputError as exc:     # a bad correction: keep the automatic result
-                errors.append({"subject": subject, "session": exc.session or "", "path": given,
-                               "stage": "match", "reason": f"{exc}; corrections of this subject "
-                               "not applied"})
-                result = matching.match_subject(scans, rows, settings=config.matching,
-                                                corrections=None, transforms=transforms)
-        except (ValueError, KeyError) as exc:
+    subjects, jobs = _subject_jobs(stage, out, sorted(known), config, corrections,
+                                   (given, source))
+    outcomes = dict(run_tasks(jobs, workers=workers if len(jobs) > 1 else 1))   # no pool for one
+    parts: dict[str, list[pd.DataFrame]] = {"matches": [], "longitudinal": [], "assignment": []}
+    registrations: list[dict] = []
+    for index, subject in enumerate(subjects):
+        outcome = outcomes[index]
+        if getattr(outcome, "error", ""):     # the task itself failed (a ScanResult)
             errors.append({"subject": subject, "session": "", "path": "", "stage": "match",
-                           "reason": f"matching failed: {exc}"})
+                           "reason": f"matching failed: {outcome.error}"})
             continue
-        for warning in result.warnings:
-            say(f"warning: sub {subject}: {warning}")
-        parts["matches"].append(result.matches)
-        longitudinal = result.longitudinal.copy()
+        for line in outcome.notes:
+            say(line)
+        errors.extend(outcome.errors)
+        registrations.extend(outcome.registrations)
+        if outcome.result is None:
+            continue
+        parts["matches"].append(outcome.result.matches)
+        longitudinal = outcome.result.longitudinal.copy()
         longitudinal["group"] = groups.get(subject, "")
         parts["longitudinal"].append(longitudinal)
-        parts["assignment"].append(result.assignment)
-        for scan in scans:
-            res = stage.results[(scan.subject, scan.session)]
-            image = matching.track_image(scan, result.assignment)
-            save_label_image(track_path(out, scan.subject, scan.session), image,
-                             res.file_affine, units_code=res.units_code, forms=res.forms,
-                             form_codes=res.form_codes)
+        parts["assignment"].append(outcome.result.assignment)
     for row in errors:
         say(f"error: sub {row['subject']}: {row['reason']}")
     _write_stage2(out, parts)
@@ -81,6 +68,51 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
                     out / "registration.tsv", columns=tuple(REGISTRATION_COLUMNS))
         write_sidecar(out / "registration.tsv", REGISTRATION_COLUMNS)
     return errors
+
+
+def _subject_jobs(stage: Stage1, out: Path, known: list[str], config: Config,
+                  corrections: pd.DataFrame | None, named: tuple[str, str]
+                  ) -> tuple[list[str], list[tuple]]:
+    """The subjects with scans to match and one ``run_tasks`` task for each; ``named`` is the
+    corrections file as given and how messages name it."""
+    from pipeline.stage2_tasks import SubjectJob, match_task
+
+    labelled = _labelled_by_subject(stage)
+    rows_of = dict(iter(stage.lesions.groupby("subject", sort=False))) \
+        if len(stage.lesions) else {}
+    mine_of = {} if corrections is None else dict(iter(corrections.groupby("subject",
+                                                                             sort=False)))
+    empty = stage.lesions.iloc[:0]
+    images = {(s.subject, s.session): s.image_path for s in stage.scans}
+    subjects = [subject for subject in known if labelled.get(subject)]
+    jobs = []
+    for subject in subjects:
+        scans = labelled[subject]
+        mine = None if corrections is None else mine_of.get(subject, corrections.iloc[:0])
+        writes = tuple(_track_write(stage, out, scan) for scan in scans)
+        job = SubjectJob(subject, scans, rows_of.get(subject, empty), mine, config.matching,
+                         {s.session: images.get((subject, s.session)) for s in scans}, writes,
+                         named)
+        jobs.append((match_task, (subject, "", f"subject {subject}", job)))
+    return subjects, jobs
+
+
+def _labelled_by_subject(stage: Stage1) -> dict[str, list[LabelledScan]]:
+    """``stage.labelled(subject)`` for every subject in one pass over the scans."""
+    out: dict[str, list[LabelledScan]] = {}
+    for scan in sorted(stage.scans, key=lambda s: (s.day, s.session)):
+        result = stage.results.get(scan.key)
+        if not scan.error and result is not None and result.ok:
+            out.setdefault(scan.subject, []).append(LabelledScan(
+                scan.subject, scan.session, scan.day, result.component_image(), result.offset,
+                result.shape, result.affine))
+    return out
+
+
+def _track_write(stage: Stage1, out: Path, scan: LabelledScan) -> tuple:
+    res = stage.results[(scan.subject, scan.session)]
+    return (track_path(out, scan.subject, scan.session), res.file_affine, res.units_code,
+            res.forms, res.form_codes)
 
 
 def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
@@ -102,14 +134,14 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
 
 
 
-def _register(stage: Stage1, subject: str, scans: list[LabelledScan], config: Config,
-              rows: list[dict]) -> dict[str, np.ndarray]:
+def register_subject(images: dict[str, Path | None], subject: str, scans: list[LabelledScan],
+                     settings: MatchSettings, rows: list[dict], notes: list[str]
+                     ) -> dict[str, np.ndarray]:
     """Rigid transforms of each session's image onto the subject's first session's image."""
     import nibabel as nib
 
     from pipeline.registration import rigid_register
 
-    images = {s.session: s.image_path for s in stage.scans if s.subject == subject}
     first = scans[0]
     if images.get(first.session) is None:
         raise ValueError("matching.register needs an image for every session (manifest 'image')")
@@ -122,16 +154,16 @@ def _register(stage: Stage1, subject: str, scans: list[LabelledScan], config: Co
         moving = nib.load(str(path))
         result = rigid_register(np.asanyarray(fixed.dataobj, dtype=np.float32), fixed.affine,
                                 np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine,
-                                iterations=config.matching.registration_iterations,
-                                bins=config.matching.registration_bins,
-                                sampling=config.matching.registration_sampling)
+                                iterations=settings.registration_iterations,
+                                bins=settings.registration_bins,
+                                sampling=settings.registration_sampling)
         rows.append({"subject": subject, "session": scan.session,
                      "reference_session": first.session, "quality": result.quality,
                      "quality_before": result.quality_before,
                      "metric_value": result.metric_value,
                      "matrix_ras": " ".join(f"{v:.6g}" for v in result.matrix_ras.ravel())})
-        say(f"note: sub {subject} ses {scan.session}: rigid registration quality "
-            f"{result.quality:.3f} (before {result.quality_before:.3f})")
+        notes.append(f"note: sub {subject} ses {scan.session}: rigid registration quality "
+                     f"{result.quality:.3f} (before {result.quality_before:.3f})")
         transforms[scan.session] = result.matrix_ras
     return transforms
 

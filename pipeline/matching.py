@@ -3,10 +3,13 @@
 For each session in time order, every component is compared with the *frontier* of earlier
 components: the components of each live lesion at the last session it was seen, provided it has
 been absent for at most ``max_gap`` sessions. Comparison is in world space (``pipeline.overlap``,
-which documents the score and the gate). One-to-one continuations come from the optimal
-assignment (``scipy.optimize.linear_sum_assignment``) on ``1 - score``, forbidden pairs carrying
-a large finite cost and dropped afterwards. A component left unassigned that overlaps (or holds
-the centroid of) a frontier component joins that lesion: a split. A component of the previous
+which documents the score and the gate); only pairs that can pass the gate are scored, found with
+a spatial index (``pipeline.candidates``), and only candidate pairs are kept, so work and memory
+grow with the close pairs, not with the product of the component counts. One-to-one
+continuations come from the optimal assignment (``scipy.optimize.linear_sum_assignment``) on
+``1 - score``, forbidden pairs carrying a large finite cost and dropped afterwards (solved per
+connected part of the candidate graph when large). A component left unassigned that overlaps (or
+holds the centroid of) a frontier component joins that lesion: a split. A component of the previous
 session left unassigned that overlaps a current component flows into it: a merge, whose survivor
 is the parent lesion larger at its last session. Lesion labels, the return of a merged lesion
 after its survivor separates again, and QA corrections (pins of a second pass, so that the
@@ -18,14 +21,14 @@ Columns added: ``matches`` (``MATCHES_COLUMNS``), ``longitudinal`` (``LONGITUDIN
 """
 from __future__ import annotations
 
-import itertools
+from collections import defaultdict
 from collections.abc import Callable, Hashable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import linear_sum_assignment
 
+from pipeline.candidates import session_evidence, sparse_assignment
 from pipeline.errors import InputError
 from pipeline.overlap import Evidence, ScanGeometry, pair_evidence, scan_geometry
 from pipeline.settings import MatchSettings
@@ -113,7 +116,6 @@ ASSIGNMENT_COLUMNS: dict[str, dict] = {
 }
 COLUMNS: dict[str, dict] = {"matches.tsv": MATCHES_COLUMNS,
                             "longitudinal.tsv": LONGITUDINAL_COLUMNS}
-_BIG = 1e6
 _RECENT = 1e-9      # cost per absent session: breaks exact ties only
 _LESION_COLUMNS = ("subject", "session", "component", "volume_mm3", "centroid_x_mm",
                    "centroid_y_mm", "centroid_z_mm")
@@ -228,9 +230,10 @@ def _subject_rows(lesions: pd.DataFrame, scans: list[LabelledScan]) -> dict[str,
         raise ValueError(f"lesions table lacks columns {missing}")
     subject = scans[0].subject
     table = lesions[lesions["subject"].astype(str) == subject]
+    by_session = dict(iter(table.groupby(table["session"].astype(str), sort=False)))
     out = {}
     for scan in scans:
-        rows = table[table["session"].astype(str) == scan.session]
+        rows = by_session.get(scan.session, table.iloc[:0])
         listed = sorted(rows["component"].astype(int))
         found = sorted(int(c) for c in np.unique(scan.components) if c > 0)
         if listed != found:
@@ -279,8 +282,7 @@ def _link_sessions(geoms: list[ScanGeometry], settings: MatchSettings, *,
     for t, geom in enumerate(geoms):
         current = [(t, c) for c in sorted(geom.voxels)]
         frontier = book.frontier(t, max_gap=settings.max_gap)
-        evidence = {(f, k): pair_evidence(geoms[f[0]], f[1], geom, k[1], settings=settings)
-                    for f in frontier for k in current}
+        evidence = session_evidence(geoms, frontier, current, settings)   # candidates only
         pairs.update(evidence)
         new = _session_links(frontier, current, book.constrain(evidence), t)
         if not new and len(current) >= settings.misregistration_min_pairs \
@@ -294,23 +296,27 @@ def _session_links(frontier: list[CompKey], current: list[CompKey],
                    evidence: Mapping[tuple[CompKey, CompKey], Evidence], t: int) -> list[Link]:
     if not frontier or not current:
         return []
-    cost = np.full((len(frontier), len(current)), _BIG)
-    for (i, f), (j, k) in itertools.product(enumerate(frontier), enumerate(current)):
-        if evidence[(f, k)].candidate:      # exact ties go to the more recent session
-            cost[i, j] = 1.0 - evidence[(f, k)].score + _RECENT * (t - 1 - f[0])
-    rows, cols = linear_sum_assignment(cost)
+    row_of = {f: i for i, f in enumerate(frontier)}
+    col_of = {k: j for j, k in enumerate(current)}
+    cost = {(row_of[f], col_of[k]): 1.0 - ev.score + _RECENT * (t - 1 - f[0])
+            for (f, k), ev in evidence.items() if ev.candidate}   # exact ties: the more recent
     links = [Link(frontier[i], current[j], evidence[(frontier[i], current[j])], True)
-             for i, j in zip(rows, cols) if cost[i, j] < _BIG]
+             for i, j in sparse_assignment(len(frontier), len(current), cost)]
+    touch_to: dict[CompKey, list[CompKey]] = defaultdict(list)     # in frontier order
+    touch_from: dict[CompKey, list[CompKey]] = defaultdict(list)   # in current order
+    for f, k in sorted((pair for pair, ev in evidence.items() if ev.touching),
+                       key=lambda pair: (row_of[pair[0]], col_of[pair[1]])):
+        touch_to[k].append(f)
+        touch_from[f].append(k)
     assigned = {link.dst for link in links}
     for k in current:                                   # splits: unassigned, touching
-        touching = [f for f in frontier if k not in assigned and evidence[(f, k)].touching]
+        touching = [] if k in assigned else touch_to[k]
         if touching:
             f = max(touching, key=lambda f: (evidence[(f, k)].score, -f[1]))
             links.append(Link(f, k, evidence[(f, k)], False))
     linked = {link.src for link in links}
     for f in frontier:                                  # merges: previous session, touching
-        touching = [k for k in current if f[0] == t - 1 and f not in linked
-                    and evidence[(f, k)].touching]
+        touching = [k for k in touch_from[f] if f[0] == t - 1 and f not in linked]
         if touching:
             k = max(touching, key=lambda k: (evidence[(f, k)].score, -k[1]))
             links.append(Link(f, k, evidence[(f, k)], False))
@@ -369,16 +375,35 @@ def _warnings(ordered: list[LabelledScan], shifts: list[_Shift],
 
 
 # ---- tables ------------------------------------------------------------------------------------
-def _review(link: Link, membership: Mapping[CompKey, int],
-            pairs: Mapping[tuple[CompKey, CompKey], Evidence], linked: set[tuple],
+@dataclass(frozen=True)
+class _PairIndex:
+    """The candidate pairs by their earlier and by their later component, so that the review
+    of a link looks only at the pairs sharing one of its ends."""
+
+    by_src: dict[CompKey, list[tuple[CompKey, Evidence]]]
+    by_dst: dict[CompKey, list[tuple[CompKey, Evidence]]]
+
+    @classmethod
+    def of(cls, pairs: Mapping[tuple[CompKey, CompKey], Evidence]) -> _PairIndex:
+        by_src: dict[CompKey, list] = defaultdict(list)
+        by_dst: dict[CompKey, list] = defaultdict(list)
+        for (f, k), evidence in pairs.items():
+            if evidence.candidate:
+                by_src[f].append((k, evidence))
+                by_dst[k].append((f, evidence))
+        return cls(dict(by_src), dict(by_dst))
+
+
+def _review(link: Link, membership: Mapping[CompKey, int], ends: _PairIndex, linked: set[tuple],
             flagged: bool, settings: MatchSettings) -> tuple[float, list[str]]:
     """Confidence and review reasons. A rival is a candidate pair that is not a link, shares an
     end with ``link`` and would have put that end into another lesion."""
     ev = link.evidence
-    rivals = [e.score for (f, k), e in pairs.items() if e.candidate and (f, k) not in linked and (
-        (f == link.src and k != link.dst and k[0] == link.dst[0]
-         and membership[k] != membership[link.dst])
-        or (k == link.dst and f != link.src and membership[f] != membership[link.src]))]
+    rivals = [e.score for k, e in ends.by_src.get(link.src, ()) if (link.src, k) not in linked
+              and k != link.dst and k[0] == link.dst[0]
+              and membership[k] != membership[link.dst]]
+    rivals += [e.score for f, e in ends.by_dst.get(link.dst, ()) if (f, link.dst) not in linked
+               and f != link.src and membership[f] != membership[link.src]]
     confidence = ev.score - max(rivals) if rivals else ev.score
     reasons = []
     if rivals and confidence < settings.ambiguity_margin:
@@ -401,9 +426,10 @@ def _matches_table(ordered: list[LabelledScan], links: Sequence[Link],
                    ) -> pd.DataFrame:
     rows = []
     linked = {(link.src, link.dst) for link in links}
+    ends = _PairIndex.of(pairs)
     for link, relation in zip(links, link_relations(links)):
         ev, shift = link.evidence, shifts[link.dst[0]]
-        confidence, reasons = _review(link, membership, pairs, linked, shift.flagged, settings)
+        confidence, reasons = _review(link, membership, ends, linked, shift.flagged, settings)
         if link.dst in revived and not link.corrected:
             reasons = reasons + ["separated"]
         rows.append({

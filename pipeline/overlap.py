@@ -34,6 +34,7 @@ all in RAS+ millimetres.
 """
 from __future__ import annotations
 
+import functools
 import itertools
 from dataclasses import dataclass
 
@@ -66,10 +67,15 @@ class ScanGeometry:
     radii: dict[int, float]
     volumes: dict[int, float]
 
-    @property
+    @functools.cached_property
     def voxel_volume_mm3(self) -> float:
         """Volume of one voxel (mm3)."""
         return float(abs(np.linalg.det(self.scan.affine[:3, :3])))
+
+    @functools.cached_property
+    def ref2vox(self) -> np.ndarray:
+        """Inverse of ``vox2ref`` (computed once per scan, not once per pair)."""
+        return np.linalg.inv(self.vox2ref)
 
 
 @dataclass(frozen=True)
@@ -130,8 +136,11 @@ def scan_geometry(scan: LabelledScan, rows: pd.DataFrame, *,
     slices = ndimage.find_objects(comps) if comps.size else []
     offset = np.asarray(scan.offset)
     voxels, boxes, ref_boxes, centroids, radii, volumes = {}, {}, {}, {}, {}, {}
-    for row in rows.itertuples(index=False):
-        c = int(row.component)
+    columns = [rows[name].to_numpy() for name in ("component", "volume_mm3", "centroid_x_mm",
+                                                   "centroid_y_mm", "centroid_z_mm")] \
+        if len(rows) else [np.zeros(0)] * 5
+    for component, volume, *point in zip(*(column.tolist() for column in columns)):
+        c = int(component)
         box = slices[c - 1] if c - 1 < len(slices) else None
         if box is None:
             raise ValueError(f"component {c} is listed but absent from the scan's image")
@@ -142,9 +151,8 @@ def scan_geometry(scan: LabelledScan, rows: pd.DataFrame, *,
         voxels[c] = int(counts[c])
         boxes[c] = (lo, hi)
         ref_boxes[c] = (world.min(axis=0), world.max(axis=0))
-        point = np.array([row.centroid_x_mm, row.centroid_y_mm, row.centroid_z_mm], float)
-        centroids[c] = _apply(to_ref, point[None])[0]
-        volumes[c] = float(row.volume_mm3)
+        centroids[c] = _apply(to_ref, np.array(point, float)[None])[0]
+        volumes[c] = float(volume)
         radii[c] = equivalent_radius(volumes[c])
     return ScanGeometry(scan, vox2ref, voxels, boxes, ref_boxes, centroids, radii, volumes)
 
@@ -167,7 +175,7 @@ def labels_at(geometry: ScanGeometry, ijk: np.ndarray) -> np.ndarray:
 
 def label_at_point(geometry: ScanGeometry, point: np.ndarray) -> int:
     """Component number at a reference-world point (nearest voxel), 0 for background."""
-    ijk = np.floor(_apply(np.linalg.inv(geometry.vox2ref), np.asarray(point)[None]) + 0.5)
+    ijk = np.floor(_apply(geometry.ref2vox, np.asarray(point)[None]) + 0.5)
     return int(labels_at(geometry, ijk)[0])
 
 
@@ -178,7 +186,7 @@ def component_on_grid(src: ScanGeometry, component: int, dst: ScanGeometry) -> n
     """
     lo, hi = src.boxes[component]
     offset = np.asarray(src.scan.offset)
-    src_to_dst = np.linalg.inv(dst.vox2ref) @ src.vox2ref
+    src_to_dst = dst.ref2vox @ src.vox2ref
     corners = _apply(src_to_dst, (offset + lo - 0.5) + _CORNERS * (hi - lo + 1))
     first = np.ceil(corners.min(axis=0) - 1e-9).astype(np.int64)
     last = np.floor(corners.max(axis=0) + 1e-9).astype(np.int64)
@@ -203,6 +211,8 @@ def dice_world(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) -> fl
     >>> dice_world(a, 1, b, 1)
     0.5
     """
+    if np.array_equal(a.vox2ref, b.vox2ref):
+        return _dice_same_grid(a, comp_a, b, comp_b)
     fine, comp_f, coarse, comp_c = a, comp_a, b, comp_b
     if b.voxel_volume_mm3 < a.voxel_volume_mm3 * (1 - 1e-9):
         fine, comp_f, coarse, comp_c = b, comp_b, a, comp_a
@@ -212,10 +222,29 @@ def dice_world(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) -> fl
     return 2.0 * both / total if total else 0.0
 
 
+def _dice_same_grid(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) -> float:
+    """``dice_world`` when both scans have one voxel grid in the reference world: the nearest
+    voxel of a voxel centre is itself, so the voxels are compared where the two boxes overlap."""
+    start_a = np.asarray(a.scan.offset) + a.boxes[comp_a][0]
+    start_b = np.asarray(b.scan.offset) + b.boxes[comp_b][0]
+    lo = np.maximum(start_a, start_b)
+    hi = np.minimum(np.asarray(a.scan.offset) + a.boxes[comp_a][1],
+                    np.asarray(b.scan.offset) + b.boxes[comp_b][1])
+    total = a.voxels[comp_a] + b.voxels[comp_b]
+    if np.any(hi < lo):
+        return 0.0
+    crop_a = [slice(int(x), int(y) + 1) for x, y in zip(lo - a.scan.offset, hi - a.scan.offset)]
+    crop_b = [slice(int(x), int(y) + 1) for x, y in zip(lo - b.scan.offset, hi - b.scan.offset)]
+    both = int(np.count_nonzero((a.scan.components[tuple(crop_a)] == comp_a)
+                                & (b.scan.components[tuple(crop_b)] == comp_b)))
+    return 2.0 * both / total if total else 0.0
+
+
 def _boxes_meet(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int) -> bool:
     lo_a, hi_a = a.ref_boxes[comp_a]
     lo_b, hi_b = b.ref_boxes[comp_b]
-    return bool(np.all(lo_a <= hi_b) and np.all(lo_b <= hi_a))
+    return all(x <= y for x, y in zip(lo_a.tolist(), hi_b.tolist())) \
+        and all(x <= y for x, y in zip(lo_b.tolist(), hi_a.tolist()))
 
 
 def pair_evidence(a: ScanGeometry, comp_a: int, b: ScanGeometry, comp_b: int, *,

@@ -297,20 +297,50 @@ def track_image(scan: LabelledScan, assignment: pd.DataFrame) -> np.ndarray:
     >>> image.dtype.name, image[1].tolist()
     ('int16', [[4, 0, 3]])
     """
-    subject_rows = assignment[assignment["subject"].astype(str) == scan.subject]
-    dtype = _track_dtype(int(subject_rows["lesion"].max()) if len(subject_rows) else 0)
-    rows = subject_rows[subject_rows["session"].astype(str) == scan.session]
+    return track_images([scan], assignment)[0]
+
+
+def track_images(scans: Sequence[LabelledScan], assignment: pd.DataFrame) -> list[np.ndarray]:
+    """``track_image`` of each scan (all of one subject), the table read once.
+
+    Examples
+    --------
+    >>> comp = np.array([[[1, 0, 2]]], np.int32)
+    >>> scans = [LabelledScan("01", s, 0.0, comp, (0, 0, 0), (1, 1, 3), np.eye(4))
+    ...          for s in ("1", "2")]
+    >>> table = pd.DataFrame({"subject": ["01"] * 4, "session": ["1", "1", "2", "2"],
+    ...                       "component": [1, 2, 1, 2], "lesion": [1, 2, 1, 3]})
+    >>> [image.ravel().tolist() for image in track_images(scans, table)]
+    [[1, 0, 2], [1, 0, 3]]
+    """
+    if not scans:
+        return []
+    mine = assignment[assignment["subject"].astype(str).to_numpy() == scans[0].subject]
+    dtype = _track_dtype(int(mine["lesion"].max()) if len(mine) else 0)
+    sessions = mine["session"].astype(str).to_numpy()
+    comps_all = mine["component"].astype(int).to_numpy()
+    lesions_all = mine["lesion"].astype(int).to_numpy()
+    out = []
+    for scan in scans:
+        at = sessions == scan.session
+        out.append(_paint(scan, comps_all[at], lesions_all[at], dtype))
+    return out
+
+
+def _paint(scan: LabelledScan, components: np.ndarray, lesions: np.ndarray,
+           dtype: np.dtype) -> np.ndarray:
     comps = scan.components
     n_comps = int(comps.max()) if comps.size else 0
     lookup = np.zeros(n_comps + 1, dtype=dtype)
-    for comp, lesion in zip(rows["component"].astype(int), rows["lesion"].astype(int)):
+    for comp, lesion in zip(components.tolist(), lesions.tolist()):
         if 1 <= comp <= n_comps:
             lookup[comp] = lesion
-    missing = [c for c in range(1, n_comps + 1) if lookup[c] == 0 and np.any(comps == c)]
+    counts = np.bincount(comps.ravel(), minlength=n_comps + 1) if comps.size else lookup
+    missing = [int(c) + 1 for c in np.flatnonzero((lookup[1:] == 0) & (counts[1:] > 0))]
     if missing:
         raise ValueError(f"subject {scan.subject} session {scan.session}: components {missing} "
                          "have no lesion in the assignment table")
-    image = np.zeros(scan.shape, dtype=dtype)
+    image = np.zeros(scan.shape, dtype=dtype, order="F")   # the file's order
     if comps.size:
         i, j, k = scan.offset
         a, b, c = comps.shape

@@ -244,18 +244,18 @@ def _remove_stale_temporaries(out: Path) -> None:
 
 
 def _later_stages(stage: Stage1, out: Path, *, config: Config, events: Path | None,
-                  corrections: pd.DataFrame | None, corrections_path: Path | None, run: str
-                  ) -> tuple[list[dict], dict[str, Path | None]]:
+                  corrections: pd.DataFrame | None, corrections_path: Path | None, run: str,
+                  workers: int = 1) -> tuple[list[dict], dict[str, Path | None]]:
     """Stages 2 and 3 after stage 1; returns new error rows and files used."""
     errors = _match_stage(stage, out, config=config, corrections=corrections,
-                          corrections_path=corrections_path, run=run)
+                          corrections_path=corrections_path, run=run, workers=workers)
     _fit_stage(out, config=config, events=_events(events, stage, errors, out), run=run)
     return errors, {"events": events, "corrections": corrections_path}
 
 
 def _match_stage(stage: Stage1, out: Path, *, config: Config,
                  corrections: pd.DataFrame | None, corrections_path: Path | None,
-                 run: str) -> list[dict]:
+                 run: str, workers: int = 1) -> list[dict]:
     """Stage 2, with the track images and registrations of an earlier match removed first (a
     smaller input must not leave the images of subjects it no longer holds)."""
     from pipeline.later_stages import run_matching
@@ -266,7 +266,7 @@ def _match_stage(stage: Stage1, out: Path, *, config: Config,
                 path.unlink()
     (out / "registration.tsv").unlink(missing_ok=True)
     errors = run_matching(stage, out, config=config, corrections=corrections,
-                          corrections_path=corrections_path)
+                          corrections_path=corrections_path, workers=workers)
     run_state.stage_done(out, run, "match")
     return errors
 
@@ -300,7 +300,8 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
                           stage=stage, started=started)
         write_provenance(out, **provenance)      # later commands can build on stage 1 now
         errors, files = _later_stages(stage, out, config=config, events=events,
-                                      corrections=table, corrections_path=corrections, run=run)
+                                      corrections=table, corrections_path=corrections, run=run,
+                                      workers=workers)
         write_errors(stage.errors + errors, out)
         write_dataset_description(out)
         write_provenance(out, **provenance, extra_files=files)    # before the report reads it
@@ -363,7 +364,8 @@ def _keep_errors(out: Path, stages: tuple[str, ...]) -> list[dict]:
     return [e for e in read_errors(out) if e.get("stage") not in stages]
 
 
-def match_only(out: Path, *, config: Config, corrections: Path | None = None) -> int:
+def match_only(out: Path, *, config: Config, corrections: Path | None = None,
+               workers: int = 1) -> int:
     """``lesion-growth match OUT``: stage 2 again (e.g. after QA corrections), on stage 1 as
     recorded (refused when an input changed since)."""
     from pipeline.recorded import recorded_stage1
@@ -378,7 +380,7 @@ def match_only(out: Path, *, config: Config, corrections: Path | None = None) ->
         run = run_state.begin(out, "match", ("match",))
         had_report = drop_report(out)
         errors = _match_stage(stage, out, config=config, corrections=table,
-                              corrections_path=corrections, run=run)
+                              corrections_path=corrections, run=run, workers=workers)
         kept = _keep_errors(out, ("match",))
         write_errors(kept + errors, out)
         update_provenance(out, config=config, sections=("matching",),

@@ -237,7 +237,14 @@ def test_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, monke
         monkeypatch.setattr(Path, "write_text", lambda self, *a, **k: _fail_midway(self))
         again = lambda: write_text(path, '{"new": 1}\n')                     # noqa: E731
     else:
-        monkeypatch.setattr(nib, "save", lambda image, target: _fail_midway(target))
+        # the label image goes out in one write of its gzip bytes (pipeline.io.nifti_gz_bytes)
+        real_write = Path.write_bytes
+
+        def torn(self, data):
+            real_write(self, data[: len(data) // 2])   # half the file, as a full disk leaves it
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        monkeypatch.setattr(Path, "write_bytes", torn)
         again = lambda: save_label_image(path, labels * 2, np.eye(4))        # noqa: E731
     with pytest.raises(OSError, match="No space left"):
         again()
