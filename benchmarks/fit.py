@@ -34,11 +34,11 @@ from scipy import optimize
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from pipeline import groupfit  # noqa: E402
+from pipeline.growth import group_fits as groupfit  # noqa: E402
 from pipeline.settings import FitSettings  # noqa: E402
 
 try:
-    from pipeline.growth import fit_lesions  # noqa: E402
+    from pipeline.growth.lesion_fits import fit_lesions  # noqa: E402
 except ImportError as exc:  # the per-lesion stage may be missing from a partial checkout
     fit_lesions, MISSING = None, f"pipeline.growth.fit_lesions not importable ({exc})"
 else:

@@ -125,8 +125,8 @@ def _stages_alone(manifest: Path, workers: int) -> tuple[float, float]:
     """Stage 1 (``run_volumes``, no cache: a new OUT) and stage 2 (``run_matching``) timed in
     this process, without interpreter start-up or the rebuild of stage 1 that ``match`` does."""
     from pipeline.config import load_config
-    from pipeline.later_stages import run_matching
-    from pipeline.runner import run_volumes
+    from pipeline.run.stages import run_matching
+    from pipeline.run.stage1 import run_volumes
 
     out = manifest.parent / "out-alone"
     if out.exists():

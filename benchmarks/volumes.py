@@ -29,7 +29,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from pipeline.batch import run_tasks, volumes_task  # noqa: E402
+from pipeline.run.executors import run_tasks, volumes_task  # noqa: E402
 from pipeline.settings import VolumeSettings  # noqa: E402
 
 

@@ -14,8 +14,8 @@ import time
 from pathlib import Path
 
 from pipeline.cli import main
-from pipeline.demo import make_demo_inputs
-from pipeline.tables import read_table
+from pipeline.demo.cohort import make_demo_inputs
+from pipeline.io.tsv import read_table
 
 
 def main_batch() -> None:

@@ -13,7 +13,7 @@ import tempfile
 from pathlib import Path
 
 from pipeline.cli import main
-from pipeline.tables import read_table
+from pipeline.io.tsv import read_table
 
 work = Path(sys.argv[1] if len(sys.argv) > 1 else tempfile.mkdtemp())
 out = work / "out"

@@ -30,8 +30,8 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Config
-from pipeline.sidecars import UNFITTED_COLUMNS
-from pipeline.volumes import LabelledScan, component_table, scan_table
+from pipeline.run.sidecars import UNFITTED_COLUMNS
+from pipeline.volumes.components import LabelledScan, component_table, scan_table
 
 ScanInput = tuple[str, str, float, np.ndarray, np.ndarray]
 
@@ -69,7 +69,7 @@ def track_lesions(lesions: pd.DataFrame, scans: Iterable[LabelledScan], *,
                   config: Config = Config(), corrections: pd.DataFrame | None = None
                   ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """matches, longitudinal and component -> lesion assignment for every subject."""
-    from pipeline.matching import match_subject
+    from pipeline.matching.links import match_subject
 
     scans = list(scans)
     out: dict[str, list[pd.DataFrame]] = {"m": [], "l": [], "a": []}
@@ -93,8 +93,10 @@ def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *
     """fits.tsv, group_fits.tsv and unfitted.tsv rows; ``events`` has subject, day, event[,
     lesion]. A lesion phase where no law could be fitted (fewer sessions than any law has
     parameters) has no row in fits.tsv (contract) but one in ``unfitted`` saying why."""
-    from pipeline import groupfit, growth, phases
-    from pipeline.response_fits import add_windows
+    from pipeline.growth import group_fits as groupfit
+    from pipeline.growth import lesion_fits as growth
+    from pipeline.growth import phases
+    from pipeline.growth.response_fits import add_windows
 
     table = longitudinal if "group" in longitudinal.columns else \
         longitudinal.assign(group="")
@@ -106,5 +108,3 @@ def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *
     return (fits[~none].reset_index(drop=True),
             groupfit.fit_groups(phased, settings=config.fitting),
             unfitted.reset_index(drop=True))
-
-

@@ -13,7 +13,7 @@ import typer
 
 from pipeline import DISCLAIMER, __version__
 from pipeline.errors import ConfigError, InputError, PipelineError, UsageError
-from pipeline.outdir import check_out
+from pipeline.run.outdir import check_out
 
 EPILOG = f"{DISCLAIMER} lesion-growth {__version__}."
 
@@ -80,7 +80,7 @@ def _config(path: Path | None, desc: str | None = None, forecast: float | None =
 def _start_pool(workers: int, scheduler: str | None) -> None:
     """Start the worker pool's fork server first, so its imports overlap this process's own."""
     if scheduler is None and workers >= 0:
-        from pipeline.batch import start_pool_server
+        from pipeline.run.executors import start_pool_server
 
         start_pool_server(workers)
 
@@ -95,7 +95,7 @@ def run(input: Path = InputArg, out: Path = OutOpt, events: Path | None = Events
     """Every stage: volumes, matching, fitting, report."""
     check_out(out)
     _start_pool(workers, scheduler)
-    from pipeline.workflow import run_all
+    from pipeline.run.commands import run_all
 
     settings = _config(config, desc, forecast_days)
     raise typer.Exit(run_all(input, out, config=settings, config_path=config, events=events,
@@ -111,7 +111,7 @@ def volumes(input: Path = InputArg, out: Path = OutOpt, config: Path | None = Co
     """Stage 1 alone: lesions.tsv (one row per connected lesion component)."""
     check_out(out)
     _start_pool(workers, scheduler)
-    from pipeline.workflow import volumes_only
+    from pipeline.run.commands import volumes_only
 
     settings = _config(config, desc)
     raise typer.Exit(volumes_only(input, out, config=settings, config_path=config,
@@ -123,7 +123,7 @@ def volumes(input: Path = InputArg, out: Path = OutOpt, config: Path | None = Co
 def match(out: Path = OutArg, corrections: Path | None = CorrectionsOpt,
           config: Path | None = ConfigOpt, workers: int = WorkersOpt) -> None:
     """Stage 2 alone: matches.tsv, longitudinal.tsv and tracks/ from lesions.tsv in OUT."""
-    from pipeline.workflow import match_only
+    from pipeline.run.commands import match_only
 
     check_out(out, earlier_run=True)
     _start_pool(workers, None)
@@ -136,7 +136,7 @@ def match(out: Path = OutArg, corrections: Path | None = CorrectionsOpt,
 def fit(out: Path = OutArg, events: Path | None = EventsOpt,
         config: Path | None = ConfigOpt, forecast_days: float | None = ForecastOpt) -> None:
     """Stage 3 alone: fits.tsv and group_fits.tsv from longitudinal.tsv in OUT."""
-    from pipeline.workflow import fit_only
+    from pipeline.run.commands import fit_only
 
     check_out(out, earlier_run=True)
     raise typer.Exit(fit_only(out, config=_config(config, None, forecast_days), events=events))
@@ -146,7 +146,7 @@ def fit(out: Path = OutArg, events: Path | None = EventsOpt,
 @_guard
 def report(out: Path = OutArg, config: Path | None = ConfigOpt) -> None:
     """report.html from what is in OUT."""
-    from pipeline.workflow import report_only
+    from pipeline.run.commands import report_only
 
     check_out(out, earlier_run=True)
     raise typer.Exit(report_only(out, config=_config(config)))
@@ -164,7 +164,7 @@ def evaluate(out: Path = OutArg,
              positive: str | None = typer.Option(None, "--positive", help="Outcome value "
                                                     "that counts as positive.")) -> None:
     """How well a fitted figure separates two outcomes: evaluation.tsv."""
-    from pipeline.workflow import evaluate_only
+    from pipeline.run.commands import evaluate_only
 
     check_out(out, earlier_run=True)
     raise typer.Exit(evaluate_only(out, outcomes, figures=tuple(figure), phase=phase,
@@ -176,7 +176,7 @@ def evaluate(out: Path = OutArg,
 def check(input: Path = InputArg, config: Path | None = ConfigOpt,
           desc: str | None = DescOpt) -> None:
     """Validate every input (headers, dates, geometry, labels); compute and write nothing."""
-    from pipeline.workflow import check_inputs
+    from pipeline.run.commands import check_inputs
 
     raise typer.Exit(check_inputs(input, config=_config(config, desc)))
 
@@ -190,7 +190,7 @@ def demo(out: Path = typer.Argument(..., help="Folder for the demo inputs and ou
     """Make the invented demo cohort under OUT/inputs and run every stage on it."""
     check_out(out)
     _start_pool(workers, None)
-    from pipeline.workflow import run_demo
+    from pipeline.run.commands import run_demo
 
     raise typer.Exit(run_demo(out, workers=workers, quiet=quiet, subjects=subjects))
 

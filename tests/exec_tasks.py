@@ -8,7 +8,7 @@ import time
 import uuid
 from pathlib import Path
 
-from pipeline.batch import ScanResult
+from pipeline.run.results import ScanResult
 
 
 def echo(subject: str, session: str, path: str, delay: float = 0.0,

@@ -8,7 +8,8 @@ from __future__ import annotations
 import os
 import time
 
-from pipeline.batch import ScanResult, volumes_task
+from pipeline.run.results import ScanResult
+from pipeline.run.executors import volumes_task
 
 #: ``python -c KILL_AT_RENAME NAME ARGS...``: the command line ARGS, killed by SIGKILL inside the
 #: rename that would put a file ending in NAME in place (the table is written, not yet renamed).

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from pipeline.volumes import LabelledScan
+from pipeline.volumes.components import LabelledScan
 
 
 @dataclass(frozen=True)

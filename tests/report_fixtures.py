@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from pipeline.tables import write_table
+from pipeline.io.tsv import write_table
 
 # (lesion id, centre voxel, radius in voxels) per session; a lesion id of 0 is not drawn.
 _P01_DAYS = {"01": 0.0, "02": 30.0, "03": 60.0, "04": 120.0}

@@ -1,0 +1,1 @@
+"""The invented demo cohort: stories with known truth, shapes, files."""

@@ -1,0 +1,1 @@
+"""Manifest and BIDS discovery, events and input checks (`check`)."""

@@ -1,0 +1,1 @@
+"""Reading masks and images, writing label images, TSV tables and atomic writes."""

@@ -1,0 +1,1 @@
+"""The QA report, built from the tables in OUT (never recomputes)."""

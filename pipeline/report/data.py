@@ -1,0 +1,344 @@
+"""Reading what the report shows from OUT: tables, provenance, track images and MRI images.
+
+Nothing here recomputes a stage. A missing or unreadable file becomes a message, never an
+exception, so the report can say what it could not show.
+"""
+from __future__ import annotations
+
+import json
+import math
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+
+from pipeline.geometry import UNIT_TO_MM
+from pipeline.io.names import track_path
+from pipeline.io.tsv import read_table
+
+#: Files the report reads, with what they hold (for "missing" messages). Optional ones last.
+INPUT_FILES: dict[str, str] = {
+    "lesions.tsv": "lesion components of every mask (stage 1)",
+    "masks.tsv": "every scan that was read (stage 1)",
+    "matches.tsv": "links between sessions (stage 2)",
+    "longitudinal.tsv": "lesion tracks over sessions (stage 2)",
+    "fits.tsv": "growth-law fits per lesion and phase (stage 3)",
+    "group_fits.tsv": "group fits with a shared exponent (stage 3)",
+    "errors.tsv": "inputs that failed",
+    "evaluation.tsv": "separation of outcomes by a fitted figure (optional)",
+    "events.tsv": "treatment events (optional)",
+}
+OPTIONAL_FILES = ("evaluation.tsv", "events.tsv")
+#: Columns without which a table cannot be used, and which of them must be whole numbers.
+_REQUIRED = {
+    "lesions.tsv": (("subject", "session", "component"), ("component",)),
+    "masks.tsv": (("subject", "session"), ()),
+    "matches.tsv": (("subject", "session_from", "component_from", "session_to", "component_to"),
+                    ("component_from", "component_to")),
+    "longitudinal.tsv": (("subject", "lesion", "session", "day"), ("lesion",)),
+    "fits.tsv": (("subject", "lesion"), ("lesion",)),
+    "group_fits.tsv": (("beta",), ()),
+    "events.tsv": (("subject", "day"), ()),
+}
+
+_IMAGE_ERRORS = (OSError, ValueError, EOFError, zlib.error, nib.filebasedimages.ImageFileError)
+
+
+@dataclass(frozen=True)
+class ReportInputs:
+    """Everything read from OUT. A missing table is an empty DataFrame plus a message."""
+
+    out_dir: Path
+    tables: dict[str, pd.DataFrame]
+    problems: dict[str, str]
+    provenance: dict
+
+    def table(self, name: str) -> pd.DataFrame:
+        """The table read from ``name`` (empty when missing)."""
+        return self.tables.get(name, pd.DataFrame())
+
+
+def load_inputs(out_dir: str | Path) -> ReportInputs:
+    """Read every table the report uses from ``out_dir``; record what is missing or unreadable.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> inputs = load_inputs(tempfile.mkdtemp())
+    >>> inputs.problems["fits.tsv"]
+    'fits.tsv is missing: growth-law fits per lesion and phase (stage 3) cannot be shown.'
+    """
+    out = Path(out_dir)
+    tables: dict[str, pd.DataFrame] = {}
+    problems: dict[str, str] = {}
+    for name, what in INPUT_FILES.items():
+        path = out / name
+        if not path.is_file():
+            tables[name] = pd.DataFrame()
+            problems[name] = f"{name} is missing: {what} cannot be shown."
+            continue
+        try:
+            tables[name], note = _checked(name, read_table(path))
+        except (OSError, ValueError, UnicodeDecodeError) as exc:
+            tables[name], note = pd.DataFrame(), f"could not be read ({_short(exc)})"
+        if note:
+            problems[name] = f"{name} {note}: {what} cannot be shown."
+    provenance: dict = {}
+    path = out / "provenance.json"
+    if not path.is_file():
+        problems["provenance.json"] = "provenance.json is missing: run details cannot be shown."
+    else:
+        try:
+            loaded = json.loads(path.read_text(encoding="utf-8"))
+            provenance = loaded if isinstance(loaded, dict) else {}
+        except (OSError, ValueError) as exc:
+            problems["provenance.json"] = f"provenance.json could not be read ({_short(exc)})."
+    if not (out / "tracks").is_dir():
+        problems["tracks/"] = "tracks/ is missing: lesion slices cannot be drawn."
+    from pipeline.run.state import problems as mixed_runs
+
+    for number, text in enumerate(mixed_runs(out, "report"), start=1):
+        problems[f"run state {number}"] = f"Out of date: {text}; the page shows it as it is."
+    return ReportInputs(out, tables, problems, provenance)
+
+
+def _checked(name: str, table: pd.DataFrame) -> tuple[pd.DataFrame, str]:
+    """Refuse a table without its key columns; drop rows whose ids are not whole numbers."""
+    required, whole = _REQUIRED.get(name, ((), ()))
+    missing = [c for c in required if c not in table]
+    if missing:
+        return pd.DataFrame(), f"lacks the column(s) {', '.join(missing)}"
+    for column in ("subject", "session", "session_from", "session_to"):
+        if column in table:
+            table = table.assign(**{column: table[column].astype(str)})
+    for column in whole:
+        values = pd.to_numeric(table[column], errors="coerce")
+        table = table[values.notna() & (values == values.round())].assign(
+            **{column: values.dropna().astype("int64")})
+    if "day" in table:
+        table = table.assign(day=pd.to_numeric(table["day"], errors="coerce"))
+    return table, ""
+
+
+def _short(exc: BaseException) -> str:
+    text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    return text[:160]
+
+
+def subject_rows(table: pd.DataFrame, subject: str) -> pd.DataFrame:
+    """Rows of ``table`` for one subject (empty when the table has no subject column)."""
+    if table.empty or "subject" not in table:
+        return table.iloc[0:0]
+    return table[table["subject"].astype(str) == subject]
+
+
+def is_true(value: object) -> bool:
+    """True for booleans True and text such as ``true``/``yes``/``1``."""
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    return str(value).strip().lower() in {"true", "yes", "1", "y"}
+
+
+def as_number(value: object) -> float:
+    """Float of ``value``, NaN when it is missing or not a number."""
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return math.nan
+    return number
+
+
+@dataclass(frozen=True)
+class Scan:
+    """One session's track image: as stored (for bounding boxes) and in RAS orientation."""
+
+    stored: np.ndarray
+    canonical: np.ndarray
+    affine: np.ndarray          # canonical voxel -> RAS+ mm
+    stored_affine: np.ndarray
+
+
+@dataclass
+class ScanCache:
+    """Track and MRI images of one subject, each read at most once."""
+
+    inputs: ReportInputs
+    subject: str
+    _tracks: dict = field(default_factory=dict)
+    _images: dict = field(default_factory=dict)
+
+    def track(self, session: str) -> Scan | None:
+        """The session's track image, or None when it is missing or unreadable."""
+        if session not in self._tracks:
+            self._tracks[session] = _read_scan(track_path(self.inputs.out_dir, self.subject,
+                                                          session))
+        return self._tracks[session]
+
+    def image(self, session: str) -> tuple[np.ndarray | None, str]:
+        """The MRI image on the track's grid (RAS orientation) and a note when it is not used."""
+        if session not in self._images:
+            self._images[session] = self._read_image(session)
+        return self._images[session]
+
+    def _read_image(self, session: str) -> tuple[np.ndarray | None, str]:
+        rows = subject_rows(self.inputs.table("masks.tsv"), self.subject)
+        rows = rows[rows["session"].astype(str) == session] if "session" in rows else rows
+        given = str(rows["image"].iloc[0]) if "image" in rows and len(rows) else ""
+        if not given:
+            return None, "no image given"
+        path = find_image(self.inputs, given)
+        scan = self.track(session)
+        if path is None:
+            return None, "image not found"
+        if scan is None:
+            return None, "no track image"
+        if _changed(self.inputs, self.subject, session, path):
+            return None, "image changed after the run"
+        try:
+            img = nib.load(str(path))
+            mm = np.diag([_mm_per_unit(img)] * 3 + [1.0]) @ img.affine
+            if img.shape[:3] != scan.stored.shape or not np.allclose(
+                    mm, scan.stored_affine, atol=1e-3):
+                return None, "image grid differs from the mask"
+            canonical = nib.as_closest_canonical(img)
+            data = np.asanyarray(canonical.dataobj, dtype=np.float32)
+        except _IMAGE_ERRORS as exc:
+            return None, f"image could not be read ({_short(exc)})"
+        while data.ndim > 3:
+            data = data[..., 0]
+        return data, ""
+
+    def window(self, session: str) -> tuple[float, float] | None:
+        """Grey-level window of the session's MRI image: its 1st and 99.5th percentiles."""
+        data, _ = self.image(session)
+        if data is None:
+            return None
+        sample = data[::3, ::3, ::3]
+        sample = sample[np.isfinite(sample)]
+        if sample.size == 0:
+            return None
+        low, high = np.percentile(sample, [1.0, 99.5])
+        return float(low), float(max(high, low + 1e-6))
+
+
+def _changed(inputs: ReportInputs, subject: str, session: str, path: Path) -> bool:
+    """Whether the image's SHA-256 differs from the one provenance.json recorded for it."""
+    import hashlib
+
+    scans = inputs.provenance.get("scans", [])
+    recorded = next((s.get("image_sha256") for s in scans if isinstance(s, dict)
+                     and s.get("subject") == subject and s.get("session") == session), None)
+    if not recorded:
+        return False
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest() != recorded
+
+
+def _mm_per_unit(img) -> float:
+    """Millimetres per spatial unit of a NIfTI image (xyzt_units; unknown is taken as mm)."""
+    header = getattr(img, "header", None)
+    if header is None or "xyzt_units" not in header:
+        return 1.0
+    return UNIT_TO_MM.get(int(header["xyzt_units"]) & 0x07, 1.0)
+
+
+def _read_scan(path: Path) -> Scan | None:
+    if not path.is_file():
+        return None
+    try:
+        img = nib.load(str(path))
+        stored = np.asanyarray(img.dataobj)
+        canonical = nib.as_closest_canonical(img)
+        scale = np.diag([_mm_per_unit(img)] * 3 + [1.0])     # tables are in mm; files may not be
+        return Scan(stored, np.asanyarray(canonical.dataobj), scale @ canonical.affine,
+                    scale @ img.affine)
+    except _IMAGE_ERRORS:
+        return None
+
+
+def find_image(inputs: ReportInputs, given: str) -> Path | None:
+    """Locate an ``image`` path of masks.tsv: absolute, or relative to the input's folder.
+
+    The input path in provenance.json is as given on the command line; it is tried as is, and
+    relative to OUT and to OUT's parent, since the report may be built from another folder.
+    """
+    path = Path(given)
+    if path.is_absolute():
+        return path if path.is_file() else None
+    source = inputs.provenance.get("input", {}) if isinstance(
+        inputs.provenance.get("input"), dict) else {}
+    bases: list[Path] = []
+    if source.get("path_from_out"):        # where the input was at run time, seen from OUT
+        root = inputs.out_dir / str(source["path_from_out"])
+        bases.append(root if source.get("kind") == "bids" or root.is_dir() else root.parent)
+    if source.get("path"):
+        root = Path(str(source["path"]))
+        root = root if source.get("kind") == "bids" or root.is_dir() else root.parent
+        bases += [root] if root.is_absolute() else [root, inputs.out_dir / root,
+                                                     inputs.out_dir.parent / root]
+    bases += [inputs.out_dir, inputs.out_dir / "inputs"]
+    for base in bases:
+        candidate = base / path
+        if candidate.is_file():
+            return candidate
+    return None
+
+
+def component_lesions(lesions: pd.DataFrame, cache: ScanCache,
+                      matches: pd.DataFrame | None = None) -> dict[tuple[str, int], int]:
+    """Map (session, component) of one subject to its lesion id.
+
+    In order of preference: a ``lesion`` column of lesions.tsv; the ``lesion_from`` /
+    ``lesion_to`` columns of matches.tsv; otherwise the track id that covers most voxels inside
+    the component's bounding box in ``tracks/``. Components whose lesion cannot be told are
+    left out.
+    """
+    mapping: dict[tuple[str, int], int] = {}
+    if "lesion" in lesions:
+        for _, row in lesions.iterrows():
+            if math.isfinite(as_number(row["lesion"])):
+                mapping[(str(row["session"]), int(row["component"]))] = int(row["lesion"])
+    if matches is not None and len(matches):
+        for end in ("from", "to"):
+            if f"lesion_{end}" not in matches:
+                continue
+            for _, row in matches.iterrows():
+                lesion = as_number(row[f"lesion_{end}"])
+                key = (str(row[f"session_{end}"]), int(row[f"component_{end}"]))
+                if math.isfinite(lesion) and key not in mapping:
+                    mapping[key] = int(lesion)
+    boxes = [f"bbox_{a}_{m}" for a in "ijk" for m in ("min", "max")]
+    for _, row in lesions.iterrows():
+        key = (str(row["session"]), int(row["component"]))
+        box = [as_number(row.get(b)) for b in boxes]
+        scan = None if key in mapping else cache.track(key[0])
+        if scan is None or not all(math.isfinite(b) for b in box):
+            continue
+        lo, hi = [int(b) for b in box[0::2]], [int(b) + 1 for b in box[1::2]]
+        values = scan.stored[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]]
+        values = values[values > 0].astype(np.int64)
+        if values.size:
+            mapping[key] = int(np.bincount(values).argmax())
+    return mapping
+
+
+def lesion_centres(cache: ScanCache, lesion: int,
+                   sessions: list[str]) -> tuple[dict[str, np.ndarray], float]:
+    """RAS mm centroid of ``lesion`` per session where the track shows it, and its largest
+    radius (mm) from the voxel count (sphere of equal volume)."""
+    centres: dict[str, np.ndarray] = {}
+    radius = 0.0
+    for session in sessions:
+        scan = cache.track(session)
+        if scan is None:
+            continue
+        ijk = np.argwhere(scan.canonical == lesion)
+        if ijk.size == 0:
+            continue
+        centres[session] = (scan.affine @ np.append(ijk.mean(axis=0), 1.0))[:3]
+        volume = len(ijk) * abs(np.linalg.det(scan.affine[:3, :3]))
+        radius = max(radius, (3.0 * volume / (4.0 * math.pi)) ** (1 / 3))
+    return centres, radius

@@ -1,0 +1,66 @@
+"""`lesion-growth demo` end to end: the invented cohort's known truth comes out of the tables."""
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from pipeline.cli import main
+from pipeline.io.tsv import read_table
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "out"
+    code = main(["demo", str(out), "--subjects", "6", "-q"])
+    return out, code, json.loads((out / "inputs" / "truth.json").read_text())
+
+
+def test_demo_exit_and_outputs(demo):
+    out, code, _ = demo
+    assert code == 0     # only planted failures (none among the first six subjects)
+    for name in ("lesions.tsv", "matches.tsv", "longitudinal.tsv", "fits.tsv", "group_fits.tsv",
+                 "errors.tsv", "report.html", "provenance.json", "dataset_description.json"):
+        assert (out / name).is_file(), name
+
+
+def test_demo_truth_split_merge_new_vanish(demo):
+    # Reference: the generator's truth.json (the scenario it drew), not the tool's own output.
+    out, _, truth = demo
+    matches = read_table(out / "matches.tsv")
+    longitudinal = read_table(out / "longitudinal.tsv")
+    expected = truth["expected"]
+    for split in expected["splits"]:
+        rows = matches[(matches.subject == split["subject"]) & (matches.relation == "splits")
+                       & (matches.session_to == split["session"])]
+        assert len(rows) >= 2, split
+    for merge in expected["merges"]:
+        rows = longitudinal[(longitudinal.subject == merge["subject"])
+                            & (longitudinal.session == merge["session"])]
+        absorbed = rows[rows.lesion.isin(merge["absorbed"])]
+        assert (absorbed.status == "merged").all() and len(absorbed) == len(merge["absorbed"])
+        assert str(merge["lesion"]) in set(absorbed.merged_into.astype(str))
+    for new in expected["new"]:
+        row = longitudinal[(longitudinal.subject == new["subject"])
+                           & (longitudinal.lesion == new["lesion"])].iloc[0]
+        assert row.session == new["session"] and row.status == "new"
+    for gone in expected["vanish"]:
+        track = longitudinal[(longitudinal.subject == gone["subject"])
+                             & (longitudinal.lesion == gone["lesion"])]
+        status = dict(zip(track.session, track.status))
+        assert all(status[s] == "absent" for s in gone["absent_sessions"])
+        assert status[gone["returns_session"]] == "present"
+
+
+def test_demo_response_categories_match_the_planned_story(demo):
+    # Reference: the generator's planned target-lesion categories (volume folds chosen with
+    # margins against the RANO-BM thresholds, Lin NU et al. Lancet Oncol 2015), not the tool's
+    # own output
+    out, _, truth = demo
+    planned = truth["expected"]["response"]
+    assert planned, "the demo has a response story"
+    response = read_table(out / "response.tsv")
+    response["category"] = response["category"].fillna("n/a")     # n/a is read back as missing
+    got = {(r.subject, r.session): r.category for r in response.itertuples()}
+    for item in planned:
+        assert got[(item["subject"], item["session"])] == item["category"], item
