@@ -7,7 +7,8 @@ in one process times:
   per-lesion  pipeline.growth.fit_lesions: every law in FitSettings().models, with intervals
   curve_fit   a naive loop of scipy.optimize.curve_fit over the same lesions (power law only,
               one start from the exponential fit, no intervals)
-  group       pipeline.groupfit.fit_groups: one shared beta for all lesions, with its interval
+  group       pipeline.growth.group_fits.fit_groups: one shared beta for all lesions, with its
+  interval
 checks that the tool's per-lesion betas agree with the curve_fit loop wherever both reach the same
 least-squares optimum (|delta RSS| <= 1e-6 * (1 + RSS); then |delta beta| <= 1e-3), and that the
 group beta agrees (|delta beta| <= 1e-3) with a nested curve_fit profile on a subset. It also

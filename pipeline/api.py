@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Config
-from pipeline.run.sidecars import UNFITTED_COLUMNS
+from pipeline.growth.fit_table import UNFITTED_COLUMNS
 from pipeline.volumes.components import LabelledScan, component_table, scan_table
 
 ScanInput = tuple[str, str, float, np.ndarray, np.ndarray]

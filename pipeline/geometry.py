@@ -32,6 +32,9 @@ def corner_gap_mm(a: np.ndarray, b: np.ndarray, shape: tuple[int, ...] | list[in
     return float(np.max(gap)) if np.all(np.isfinite(gap)) else float("inf")
 
 
+#: RAS+ <-> LPS+ world flip (its own inverse): ``A_ras = LPS_TO_RAS @ A_lps`` with
+#: ``A_lps[:3, :3] = direction * spacing`` and ``A_lps[:3, 3] = origin`` (SimpleITK
+#: documentation, "Fundamental concepts").
 LPS_TO_RAS = np.diag([-1.0, -1.0, 1.0, 1.0])
 
 
@@ -60,3 +63,12 @@ def ras_to_itk_geometry(affine: np.ndarray) -> tuple[tuple, tuple, tuple]:
     spacing = np.sqrt((lps[:3, :3] ** 2).sum(axis=0))
     direction = lps[:3, :3] / spacing
     return tuple(lps[:3, 3]), tuple(spacing), tuple(direction.ravel())
+
+
+def voxel_volume_mm3(affine: np.ndarray) -> float:
+    """Volume of one voxel (mm3): |det| of the affine's 3x3 part (mm per voxel step).
+
+    >>> voxel_volume_mm3(np.diag([0.5, 0.5, 2.0, 1.0]))
+    0.5
+    """
+    return float(abs(np.linalg.det(np.asarray(affine, dtype=float)[:3, :3])))

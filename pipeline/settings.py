@@ -38,12 +38,12 @@ class VolumeSettings:
         _require(self.affine_tolerance_mm > 0, "affine_tolerance_mm must be > 0")
 
 
-# ---- stage 2 (matching): owned by pipeline/matching.py's authors; edit only this class ----
+# ---- stage 2 (matching): owned by pipeline/matching/links.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class MatchSettings:
     """Stage 2: matching components across sessions into lesion tracks.
 
-    The link score (see ``pipeline.overlap``) is
+    The link score (see ``pipeline.matching.overlap``) is
     ``weight_overlap * Dice + weight_inside * [a centroid lies inside the other component]
     + weight_distance * max(0, 1 - distance_ratio / max_distance_ratio)``.
     """
@@ -83,7 +83,8 @@ class MatchSettings:
         _require(0 < self.registration_sampling <= 1, "registration_sampling must be in (0, 1]")
 
 
-# ---- stage 3 (fitting): owned by pipeline/growth.py's authors; edit only this class ----
+# ---- stage 3 (fitting): owned by pipeline/growth/lesion_fits.py's authors; edit only this class
+# ----
 @dataclass(frozen=True)
 class FitSettings:
     """Stage 3: growth-law fitting."""
@@ -135,7 +136,7 @@ class FitSettings:
         _require(self.bootstrap >= 0, "bootstrap must be >= 0 (0 = off)")
 
 
-# ---- response: owned by pipeline/response.py's authors; edit only this class ----
+# ---- response: owned by pipeline/growth/response.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class ResponseSettings:
     """Target-lesion radiographic response (response.tsv); research use only."""
@@ -153,7 +154,7 @@ class ResponseSettings:
         _require(self.absolute_mm >= 0, "absolute_mm must be >= 0")
 
 
-# ---- report: owned by pipeline/report.py's authors; edit only this class ----
+# ---- report: owned by pipeline/report/build.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class ReportSettings:
     """The QA report."""

@@ -1,6 +1,7 @@
 """Stage-1 task functions that misbehave on purpose, for tests/test_faults.py.
 
-They live in a module of their own so that worker processes of ``pipeline.batch.run_tasks`` can
+They live in a module of their own so that worker processes of ``pipeline.run.executors.run_tasks``
+can
 import them by name (a function defined inside a test module could not be pickled to a worker).
 """
 from __future__ import annotations

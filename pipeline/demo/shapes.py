@@ -19,6 +19,8 @@ from typing import Sequence
 import nibabel as nib
 import numpy as np
 
+from pipeline.geometry import voxel_volume_mm3
+
 #: Field of view of every grid along world x, y, z (mm).
 FOV_MM = (150.0, 180.0, 150.0)
 #: Centre and semi-axes (mm) of the invented head ellipsoid.
@@ -50,7 +52,7 @@ class Grid:
 
     @property
     def voxel_volume_mm3(self) -> float:
-        return float(abs(np.linalg.det(self.affine[:3, :3])))
+        return voxel_volume_mm3(self.affine)
 
 
 @dataclass(frozen=True)

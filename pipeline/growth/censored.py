@@ -74,11 +74,11 @@ def fit_censored(law: Law, t: np.ndarray, y: np.ndarray, censored: np.ndarray, l
     -------
     dict
         ``theta``, ``sigma``, ``loglik``, ``aicc`` (-2 logL + 2k + 2k(k+1)/(n-k-1) less the
-        constants that :func:`pipeline.growth_notes.aicc` drops), ``n`` and ``ok``.
+        constants that :func:`pipeline.growth.fit_table.aicc` drops), ``n`` and ``ok``.
 
     Examples
     --------
-    >>> from pipeline.laws import LAWS
+    >>> from pipeline.growth.laws import LAWS
     >>> t = np.array([0.0, 10, 20, 30]); y = np.log([100.0, 50, 25, 1.0])
     >>> out = fit_censored(LAWS["exponential"], t, y, np.array([False, False, False, True]),
     ...                    np.log(20.0), settings=FitSettings(measurement_error=0.05))

@@ -379,3 +379,14 @@ def finish_rows(series: pd.DataFrame, table: pd.DataFrame, pieces: list, *,
     for name in ("n_points", "df_resid"):          # counts print as integers, never "1.0"
         rows[name] = pd.to_numeric(rows[name], errors="coerce").round().astype("Int64")
     return rows
+
+
+#: Columns of unfitted.tsv: lesion phases where no growth law could be fitted.
+UNFITTED_COLUMNS = {
+    "subject": {"Description": "Subject label"},
+    "lesion": {"Description": "Lesion track id"},
+    "phase": {"Description": "Phase (untreated, after-<event>, ...)"},
+    "n_points": {"Description": "Sessions usable for fitting in this phase"},
+    "group": {"Description": "Group of the subject"},
+    "note": {"Description": "Why no growth law was fitted"},
+}

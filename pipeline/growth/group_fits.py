@@ -376,7 +376,8 @@ def _check_phased(phased: pd.DataFrame) -> None:
     missing = [c for c in _REQUIRED if c not in phased.columns]
     if missing:
         raise ValueError(f"the phased longitudinal table lacks columns {missing}; expected the "
-                         "output of pipeline.phases.assign_phases (with 'phase' and 'in_fit')")
+                         "output of pipeline.growth.phases.assign_phases (with 'phase' and "
+                         "'in_fit')")
 
 
 def _as_bool(column: pd.Series) -> pd.Series:
@@ -478,7 +479,7 @@ def fit_groups(phased: pd.DataFrame, *, settings: FitSettings = _DEFAULT_SETTING
     Parameters
     ----------
     phased : pandas.DataFrame
-        Longitudinal rows with ``phase`` and ``in_fit`` (``pipeline.phases.assign_phases``):
+        Longitudinal rows with ``phase`` and ``in_fit`` (``pipeline.growth.phases.assign_phases``):
         ``subject``, ``lesion``, ``day`` (days), ``volume_mm3`` (mm^3), ``phase``, ``in_fit``,
         optional ``group`` ('' or missing means the group ``all``). Only ``in_fit`` rows are used.
     settings : FitSettings

@@ -230,7 +230,7 @@ class Law:
         Where the closed form comes from.
     custom_bounds, custom_starts : callable, optional
         A law's own :meth:`bounds` and :meth:`starts` (same signatures), for laws added outside
-        this module (:mod:`pipeline.response_laws`).
+        this module (:mod:`pipeline.growth.response_laws`).
     derived : callable, optional
         ``theta (M, p) -> {column: (M,)}``: the law's own figures for ``fits.tsv``.
     """

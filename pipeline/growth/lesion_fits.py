@@ -3,7 +3,7 @@
 One row per (subject, lesion, phase, model). Fits minimise squared log-volume residuals
 (multiplicative error; REFERENCES 1.4) with bounded parameters and several starts; the power law
 dV/dt = alpha V^beta is fitted as (V0, k = alpha V0^(beta-1), beta), which keeps beta free of
-the volume unit and stable through beta = 1 (:mod:`pipeline.laws`).
+the volume unit and stable through beta = 1 (:mod:`pipeline.growth.laws`).
 
 - A law with more parameters than the phase has fitted sessions gets no row; the best row of the
   lesion and phase says so in ``note``. A (lesion, phase) where no law can be fitted gets one row
@@ -160,7 +160,7 @@ def fit_series(law: Law, t: np.ndarray, y: np.ndarray, *,
     Parameters
     ----------
     law : Law
-        From :data:`pipeline.laws.LAWS`.
+        From :data:`pipeline.growth.laws.LAWS`.
     t : (M, n) ndarray
         Days since each series' first session (first column 0, non-decreasing).
     y : (M, n) ndarray
@@ -243,7 +243,7 @@ def fit_lesions(phased: pd.DataFrame, *, settings: FitSettings = FitSettings()) 
     Parameters
     ----------
     phased : pandas.DataFrame
-        Output of :func:`pipeline.phases.assign_phases` (subject, lesion, phase, day,
+        Output of :func:`pipeline.growth.phases.assign_phases` (subject, lesion, phase, day,
         volume_mm3, in_fit, fit_exclusion, group). Not modified.
     settings : FitSettings
 

@@ -1,13 +1,14 @@
 """Response laws fitted over each whole post-event phase, shrinkage included (``fits.tsv`` rows).
 
 The regrowth fits of a post-event phase start at its nadir (``FitSettings.from_nadir``); the laws
-of ``FitSettings.response_models`` (:mod:`pipeline.response_laws`) are fitted to the same phase
+of ``FitSettings.response_models`` (:mod:`pipeline.growth.response_laws`) are fitted to the same
+phase
 from its first session, the response included. Their rows carry ``window`` = ``phase`` (the
 regrowth rows ``from-nadir``; untreated and ``from_nadir = false`` rows ``phase``), their own
 Akaike weights and ``best`` = false: AICc compares laws on the same sessions only, so they are
 never ranked against the regrowth rows. Sessions of the phase where the lesion was not seen
 (absent, or below ``detection_limit_mm3``) enter these fits as left-censored observations
-(:mod:`pipeline.censored`), and the row reports the first such day (``first_absent_day``).
+(:mod:`pipeline.growth.censored`), and the row reports the first such day (``first_absent_day``).
 Research use only (``pipeline.DISCLAIMER``).
 """
 from __future__ import annotations
@@ -50,7 +51,7 @@ def fit_whole_phases(phased: pd.DataFrame, *, settings: FitSettings = FitSetting
     Parameters
     ----------
     phased : pandas.DataFrame
-        :func:`pipeline.phases.assign_phases` output.
+        :func:`pipeline.growth.phases.assign_phases` output.
     settings : FitSettings
 
     Returns
@@ -66,7 +67,7 @@ def fit_whole_phases(phased: pd.DataFrame, *, settings: FitSettings = FitSetting
     >>> lon = pd.DataFrame({"subject": "01", "lesion": 1, "day": days, "volume_mm3": v,
     ...                     "status": "present"})
     >>> ev = pd.DataFrame({"subject": ["01"], "day": [100.0], "event": ["radiosurgery"]})
-    >>> from pipeline.phases import assign_phases
+    >>> from pipeline.growth.phases import assign_phases
     >>> rows = fit_whole_phases(assign_phases(lon, ev))
     >>> rows[["model", "n_points", "window"]].values.tolist()
     [['bertalanffy_loss', 5, 'whole-phase'], ['regression_regrowth', 5, 'whole-phase']]

@@ -1,4 +1,5 @@
-"""Response laws: a treated course modelled as a whole, shrinkage included (``pipeline.laws``).
+"""Response laws: a treated course modelled as a whole, shrinkage included
+(``pipeline.growth.laws``).
 
 - ``regression_regrowth``: V(t) = V_s (exp(-d t) + exp(g t) - 1), d, g >= 0 (Stein WD et al.
   Clin Cancer Res 2008; Stein WD et al. The Oncologist 2011; volume and pages not checked), the sum

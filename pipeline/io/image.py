@@ -8,6 +8,7 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.settings import VolumeSettings
+from pipeline.geometry import voxel_volume_mm3
 
 
 @dataclass(frozen=True, eq=False)
@@ -25,7 +26,7 @@ class MaskImage:
 
     @property
     def voxel_volume_mm3(self) -> float:
-        return float(abs(np.linalg.det(self.affine[:3, :3])))
+        return voxel_volume_mm3(self.affine)
 
 
 def check_memory(shape: tuple[int, ...] | list[int], itemsize: int, name: str,

@@ -1,9 +1,7 @@
-"""SimpleITK-read masks (NRRD, MetaImage) and the one LPS <-> RAS conversion of the code base.
+"""SimpleITK-read masks (NRRD, MetaImage).
 
 ITK works in LPS+ world coordinates with (z, y, x) arrays; nibabel and every table here use RAS+
-with (x, y, z) arrays. ``itk_affine_ras`` is the only conversion:
-``A_ras = diag(-1, -1, 1, 1) @ A_lps`` with ``A_lps[:3, :3] = direction * spacing`` and
-``A_lps[:3, 3] = origin`` (SimpleITK documentation, "Fundamental concepts").
+with (x, y, z) arrays. The one conversion is :func:`pipeline.geometry.itk_affine_ras`.
 """
 from __future__ import annotations
 

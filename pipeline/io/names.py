@@ -23,7 +23,8 @@ TEMPLATES = ("sub-{s}_ses-{t}_tracks.nii.gz", "sub-{s}_ses-{t}_desc-tracks_dseg.
              "sub-{s}_ses-{t}_desc-tracks_dseg.json")
 
 #: What an atomic write adds to a name: ``.<stem>.<8 random characters><suffixes>`` (see
-#: pipeline.files.atomic_path: a dot in front, a dot and tempfile's 8 characters after the stem).
+#: pipeline.io.atomic.atomic_path: a dot in front, a dot and tempfile's 8 characters after the
+#: stem).
 TEMPORARY_EXTRA = 1 + 1 + 8
 
 #: Characters the longest template and its temporary name use besides the two labels.

@@ -1,7 +1,8 @@
 """Which pairs of components can be candidate links, found with a spatial index, not by trying all.
 
 Stage 2 compares each session's components with the frontier of earlier components. Scoring a
-pair (``pipeline.overlap.pair_evidence``) costs a world-space Dice when the boxes meet, and with
+pair (``pipeline.matching.overlap.pair_evidence``) costs a world-space Dice when the boxes meet,
+and with
 thousands of components trying every pair grows with the product of the counts. Only candidate
 pairs matter (non-candidates never become links, rivals or costs below the gate), so each
 component gets a *reach* in the reference world:
@@ -52,7 +53,7 @@ def reach_mm(geometry: ScanGeometry, component: int, settings: MatchSettings) ->
     Examples
     --------
     >>> import pandas as pd
-    >>> from pipeline.overlap import scan_geometry
+    >>> from pipeline.matching.overlap import scan_geometry
     >>> from pipeline.volumes import LabelledScan
     >>> cube = np.ones((2, 2, 2), np.int32)
     >>> rows = pd.DataFrame({"component": [1], "volume_mm3": [8.0], "centroid_x_mm": [1.5],

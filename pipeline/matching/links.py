@@ -2,9 +2,11 @@
 
 For each session in time order, every component is compared with the *frontier* of earlier
 components: the components of each live lesion at the last session it was seen, provided it has
-been absent for at most ``max_gap`` sessions. Comparison is in world space (``pipeline.overlap``,
+been absent for at most ``max_gap`` sessions. Comparison is in world space
+(``pipeline.matching.overlap``,
 which documents the score and the gate); only pairs that can pass the gate are scored, found with
-a spatial index (``pipeline.candidates``), and only candidate pairs are kept, so work and memory
+a spatial index (``pipeline.matching.candidates``), and only candidate pairs are kept, so work and
+memory
 grow with the close pairs, not with the product of the component counts. One-to-one
 continuations come from the optimal assignment (``scipy.optimize.linear_sum_assignment``) on
 ``1 - score``, forbidden pairs carrying a large finite cost and dropped afterwards (solved per
@@ -13,8 +15,9 @@ holds the centroid of) a frontier component joins that lesion: a split. A compon
 session left unassigned that overlaps a current component flows into it: a merge, whose survivor
 is the parent lesion larger at its last session. Lesion labels, the return of a merged lesion
 after its survivor separates again, and QA corrections (pins of a second pass, so that the
-sessions after a correction follow it) are ``pipeline.identity``'s; ids and statuses follow
-``pipeline.tracks``. Exact score ties go to the frontier component of the more recent session.
+sessions after a correction follow it) are ``pipeline.matching.identity``'s; ids and statuses follow
+``pipeline.matching.tracks``. Exact score ties go to the frontier component of the more recent
+session.
 
 Columns added: ``matches`` (``MATCHES_COLUMNS``), ``longitudinal`` (``LONGITUDINAL_COLUMNS``),
 ``assignment`` (``ASSIGNMENT_COLUMNS``). Research use only; see ``pipeline.DISCLAIMER``.
@@ -152,7 +155,8 @@ def match_subject(scans: Sequence[LabelledScan], lesions: pd.DataFrame, *,
         in a second pass, so the sessions after it follow the corrected lesion.
     transforms : mapping of session -> (4, 4) ndarray, optional
         Maps each session's world (RAS+ mm) into the first session's world, e.g.
-        ``pipeline.registration.rigid_register(...).matrix_ras``; missing sessions: identity.
+        ``pipeline.matching.registration.rigid_register(...).matrix_ras``; missing sessions:
+        identity.
     corrections_source : str
         How messages about bad corrections name the table (the file as given).
 
@@ -268,7 +272,7 @@ class _Step:
 def _link_sessions(geoms: list[ScanGeometry], settings: MatchSettings, *,
                    pins: Mapping[CompKey, Hashable] | None = None,
                    suggest: Callable[[CompKey], Hashable] | None = None) -> _Step:
-    """Links and lesion labels session by session; labels follow ``pipeline.identity``."""
+    """Links and lesion labels session by session; labels follow ``pipeline.matching.identity``."""
     book = LesionBook({(t, c): v for t, g in enumerate(geoms) for c, v in g.volumes.items()},
                       pins=pins, suggest=suggest)
     links: list[Link] = []

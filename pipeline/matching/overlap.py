@@ -44,6 +44,7 @@ from scipy import ndimage
 
 from pipeline.settings import MatchSettings
 from pipeline.volumes.components import LabelledScan
+from pipeline.geometry import voxel_volume_mm3
 
 _CORNERS = np.array(list(itertools.product((0, 1), repeat=3)), dtype=float)
 
@@ -70,7 +71,7 @@ class ScanGeometry:
     @functools.cached_property
     def voxel_volume_mm3(self) -> float:
         """Volume of one voxel (mm3)."""
-        return float(abs(np.linalg.det(self.scan.affine[:3, :3])))
+        return voxel_volume_mm3(self.scan.affine)
 
     @functools.cached_property
     def ref2vox(self) -> np.ndarray:

@@ -9,7 +9,8 @@ information for multimodality registration).
 
 Geometry has one source: the nibabel-style RAS+ affine. ITK works in LPS with arrays indexed
 (z, y, x); every conversion goes through ``to_sitk``/``affine_from_sitk``/``matrix_to_ras``
-and the constant ``LPS`` (``A_ras = LPS @ A_lps``, ``LPS = diag(-1, -1, 1, 1)``).
+and the constant ``geometry.LPS_TO_RAS`` (``A_ras = LPS_TO_RAS @ A_lps``, ``diag(-1, -1, 1, 1)``,
+its own inverse).
 """
 from __future__ import annotations
 
@@ -20,8 +21,6 @@ import SimpleITK as sitk
 
 from pipeline.errors import InputError
 from pipeline.geometry import LPS_TO_RAS, itk_affine_ras, ras_to_itk_geometry
-
-LPS = LPS_TO_RAS   # RAS <-> LPS world flip (its own inverse); one definition, in itk_io
 
 
 @dataclass(frozen=True)
@@ -88,7 +87,7 @@ def matrix_to_ras(transform: sitk.Transform) -> np.ndarray:
         unit[axis] = 1.0
         lps[:3, axis] = np.array(transform.TransformPoint(tuple(unit))) - origin
     lps[:3, 3] = origin
-    return LPS @ lps @ LPS
+    return LPS_TO_RAS @ lps @ LPS_TO_RAS
 
 
 def _correlation(fixed: sitk.Image, moving: sitk.Image, transform: sitk.Transform) -> float:

@@ -9,7 +9,7 @@ sessions. Everything here follows the contract's rules behind ``longitudinal.tsv
 - status: ``present`` at the first session and whenever found, ``new`` at a later first
   appearance, ``absent`` (volume 0) when not found, ``merged`` (volume n/a, ``merged_into``)
   while the lesion has flowed into another one, ``present`` again once it separates (see
-  ``pipeline.identity``); no rows before a lesion first appears;
+  ``pipeline.matching.identity``); no rows before a lesion first appears;
 - a lesion X is *merged* at session s into lesion Y when X has no component at s and a link
   runs from one of X's components into a component of Y at s (the survivor Y was chosen by the
   matcher as the parent larger at the previous session). The survivor lists the absorbed ids

@@ -12,6 +12,7 @@ component lesion note) for ``lesion-growth match OUT --corrections``.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
@@ -32,7 +33,8 @@ FLAG_KINDS = ("Failed inputs", "Low-confidence links", "Merges", "Fits without i
 _LINK_FLAG_COLUMNS = ("flag", "flags", "review", "low_confidence")
 
 
-def write_report(out_dir: str | Path, *, settings: ReportSettings = ReportSettings()) -> Path:
+def write_report(out_dir: str | Path, *, settings: ReportSettings = ReportSettings(),
+                 out_of_date: Sequence[str] = ()) -> Path:
     """Write ``OUT/report.html`` from what is in ``out_dir`` and return its path.
 
     Parameters
@@ -55,15 +57,16 @@ def write_report(out_dir: str | Path, *, settings: ReportSettings = ReportSettin
     True
     """
     out = Path(out_dir)
-    html_text = render_report(out, settings=settings)
+    html_text = render_report(out, settings=settings, out_of_date=out_of_date)
     path = out / "report.html"
     write_text(path, html_text)
     return path
 
 
-def render_report(out_dir: str | Path, *, settings: ReportSettings = ReportSettings()) -> str:
+def render_report(out_dir: str | Path, *, settings: ReportSettings = ReportSettings(),
+                  out_of_date: Sequence[str] = ()) -> str:
     """The report page for ``out_dir`` as a string (what :func:`write_report` writes)."""
-    inputs = load_inputs(out_dir)
+    inputs = load_inputs(out_dir, out_of_date=out_of_date)
     subjects, flags, budget = [], _failure_flags(inputs), settings.max_lesion_panels
     for subject in subject_ids(inputs):
         view, subject_flags, budget = _subject_view(inputs, subject, settings, budget)

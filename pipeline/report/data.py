@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 import math
 import zlib
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -18,6 +19,7 @@ import pandas as pd
 from pipeline.geometry import UNIT_TO_MM
 from pipeline.io.names import track_path
 from pipeline.io.tsv import read_table
+from pipeline.geometry import voxel_volume_mm3
 
 #: Files the report reads, with what they hold (for "missing" messages). Optional ones last.
 INPUT_FILES: dict[str, str] = {
@@ -61,7 +63,7 @@ class ReportInputs:
         return self.tables.get(name, pd.DataFrame())
 
 
-def load_inputs(out_dir: str | Path) -> ReportInputs:
+def load_inputs(out_dir: str | Path, *, out_of_date: Sequence[str] = ()) -> ReportInputs:
     """Read every table the report uses from ``out_dir``; record what is missing or unreadable.
 
     Examples
@@ -98,9 +100,7 @@ def load_inputs(out_dir: str | Path) -> ReportInputs:
             problems["provenance.json"] = f"provenance.json could not be read ({_short(exc)})."
     if not (out / "tracks").is_dir():
         problems["tracks/"] = "tracks/ is missing: lesion slices cannot be drawn."
-    from pipeline.run.state import problems as mixed_runs
-
-    for number, text in enumerate(mixed_runs(out, "report"), start=1):
+    for number, text in enumerate(out_of_date, start=1):
         problems[f"run state {number}"] = f"Out of date: {text}; the page shows it as it is."
     return ReportInputs(out, tables, problems, provenance)
 
@@ -339,6 +339,6 @@ def lesion_centres(cache: ScanCache, lesion: int,
         if ijk.size == 0:
             continue
         centres[session] = (scan.affine @ np.append(ijk.mean(axis=0), 1.0))[:3]
-        volume = len(ijk) * abs(np.linalg.det(scan.affine[:3, :3]))
+        volume = len(ijk) * voxel_volume_mm3(scan.affine)
         radius = max(radius, (3.0 * volume / (4.0 * math.pi)) ** (1 / 3))
     return centres, radius

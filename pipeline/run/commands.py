@@ -232,7 +232,7 @@ def _events(path: Path | None, stage: Stage1, errors: list[dict],
 
 def _remove_stale_temporaries(out: Path) -> None:
     """Delete temporary files of atomic writes that a killed run left (``.<stem>.<random><suffix>``,
-    see pipeline.tables.atomic_path); only called while holding OUT's lock."""
+    see pipeline.io.tsv.atomic_path); only called while holding OUT's lock."""
     import re
 
     pattern = re.compile(r"^\.[^.]+\.[a-z0-9_]{8}\.")
@@ -316,7 +316,8 @@ def _report(out: Path, config: Config) -> Path | None:
     from pipeline.report.build import write_report
 
     try:
-        return write_report(out, settings=config.report)
+        return write_report(out, settings=config.report,
+                            out_of_date=run_state.problems(out, "report"))
     except Exception as exc:  # the report is the last step; keep its failure to one line
         say(f"error: report.html could not be written ({type(exc).__name__}: {exc}); the tables "
             "in the output folder are complete")

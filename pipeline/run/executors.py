@@ -104,8 +104,8 @@ def _init_worker() -> None:
 
 
 #: Modules the fork server imports once for every worker: what a stage-1 task uses.
-PRELOAD = ("__main__", "pipeline.run.executors", "pipeline.io", "pipeline.volumes", "pipeline.run.cache",
-           "pipeline.errors", "cc3d", "isal.isal_zlib", "threadpoolctl")
+PRELOAD = ("__main__", "pipeline.run.executors", "pipeline.io.nifti", "pipeline.volumes.components",
+           "pipeline.run.cache", "pipeline.errors", "cc3d", "isal.isal_zlib", "threadpoolctl")
 
 
 def _pool_context() -> Any:

@@ -90,12 +90,3 @@ REGISTRATION_COLUMNS = {
     "matrix_ras": {"Description": "4x4 world -> world (RAS+ mm) matrix, 16 numbers row by row, "
                    "mapping this session's coordinates into the reference session's"},
 }
-
-UNFITTED_COLUMNS = {
-    "subject": {"Description": "Subject label"},
-    "lesion": {"Description": "Lesion track id"},
-    "phase": {"Description": "Phase (untreated, after-<event>, ...)"},
-    "n_points": {"Description": "Sessions usable for fitting in this phase"},
-    "group": {"Description": "Group of the subject"},
-    "note": {"Description": "Why no growth law was fitted"},
-}

@@ -18,6 +18,7 @@ from pipeline.inputs.manifest import Scan, read_inputs
 from pipeline.io.names import track_path
 from pipeline.io.tsv import write_sidecar, write_table
 from pipeline.volumes.components import LESION_COLUMNS, LabelledScan
+from pipeline.geometry import voxel_volume_mm3
 
 ERROR_COLUMNS = ("subject", "session", "path", "stage", "reason")
 MASK_COLUMNS = ("subject", "session", "day", "mask", "image", "group", "components", "volume_mm3",
@@ -146,7 +147,7 @@ def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
                           "mask": scan.mask, "image": scan.image, "group": scan.group,
                           "components": len(columns["component"]),
                           "volume_mm3": float(np.sum(columns["volume_mm3"])),
-                          "voxel_volume_mm3": float(abs(_det(result.affine))),
+                          "voxel_volume_mm3": voxel_volume_mm3(result.affine),
                           "shape_x": result.shape[0], "shape_y": result.shape[1],
                           "shape_z": result.shape[2], "sha256": result.sha256,
                           "track_image": track_path(Path(), scan.subject, scan.session).as_posix()})
@@ -163,12 +164,6 @@ def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
         data[name] = np.concatenate([p[name] for p in parts])
     lesions = pd.DataFrame(data, columns=list(LESION_COLUMNS))
     return lesions, pd.DataFrame(mask_rows, columns=list(MASK_COLUMNS))
-
-
-def _det(affine) -> float:
-    import numpy as np
-
-    return float(np.linalg.det(np.asarray(affine)[:3, :3]))
 
 
 def write_stage1(stage: Stage1, out: Path) -> None:

@@ -1,4 +1,5 @@
-"""Stage 2 of one subject as a task for the executors of ``pipeline.batch`` (serial or a pool).
+"""Stage 2 of one subject as a task for the executors of ``pipeline.run.executors`` (serial or a
+pool).
 
 A task takes everything its subject needs (component images, lesion rows, corrections, settings,
 where its track images go), matches, writes the subject's track images and returns the tables,

@@ -75,7 +75,7 @@ def _subject_jobs(stage: Stage1, out: Path, known: list[str], config: Config,
                   ) -> tuple[list[str], list[tuple]]:
     """The subjects with scans to match and one ``run_tasks`` task for each; ``named`` is the
     corrections file as given and how messages name it."""
-    from pipeline.stage2_tasks import SubjectJob, match_task
+    from pipeline.run.stage2_tasks import SubjectJob, match_task
 
     labelled = _labelled_by_subject(stage)
     rows_of = dict(iter(stage.lesions.groupby("subject", sort=False))) \
@@ -264,7 +264,7 @@ def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> No
     from pipeline.growth import group_fits as groupfit
     from pipeline.growth import lesion_fits as growth
     from pipeline.api import fit_growth
-    from pipeline.run.sidecars import UNFITTED_COLUMNS
+    from pipeline.growth.fit_table import UNFITTED_COLUMNS
 
     fits, group_fits, unfitted = fit_growth(read_table(out / "longitudinal.tsv"), events,
                                             config=config)

@@ -8,6 +8,7 @@ import numpy as np
 
 from pipeline.voxels import _absent_labels, _label_values
 from pipeline.volumes.diameters import _axial_diameters, _row_axes, axial_axis
+from pipeline.geometry import voxel_volume_mm3
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -407,7 +408,7 @@ def measure_columns(data: np.ndarray, affine: np.ndarray, *,
     data = np.asarray(data)
     affine = np.asarray(affine, dtype=np.float64)
     found = lesion_voxels(data, connectivity, labels, name)
-    voxel_mm3 = float(abs(np.linalg.det(affine[:3, :3])))
+    voxel_mm3 = voxel_volume_mm3(affine)
     columns = _measure(found, data.shape, affine, voxel_mm3, measurable_min_diameter_mm,
                        measurable_min_slices)
     keep = columns["volume_mm3"] >= min_volume_mm3

@@ -479,7 +479,7 @@ def test_cohort_with_one_session_per_subject_runs(good_folder):
     assert (out / "fits.tsv").exists() and (out / "provenance.json").exists()
 
 
-D18 = ("defect D18: pipeline.tables.read_table lets pandas take the first column as the row index "
+D18 = ("defect D18: pipeline.io.tsv.read_table lets pandas take the first column as the row index "
        "when rows have one field more than the header (a trailing tab, as spreadsheets export): "
        "every column shifts by one")
 

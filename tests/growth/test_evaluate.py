@@ -1,4 +1,4 @@
-"""Marker evaluation: ROC AUC, DeLong SE, subject bootstrap, Youden (pipeline.evaluate)."""
+"""Marker evaluation: ROC AUC, DeLong SE, subject bootstrap, Youden (pipeline.growth.evaluate)."""
 from __future__ import annotations
 
 import numpy as np

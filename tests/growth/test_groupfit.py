@@ -1,4 +1,4 @@
-"""Group fits with a shared growth exponent (pipeline.groupfit)."""
+"""Group fits with a shared growth exponent (pipeline.growth.group_fits)."""
 from __future__ import annotations
 
 import warnings

@@ -10,8 +10,8 @@ import pytest
 import SimpleITK as sitk
 
 from pipeline.matching.links import match_subject
-from pipeline.matching.registration import (LPS, affine_from_sitk, matrix_to_ras, rigid_register,
-                                            to_sitk)
+from pipeline.geometry import LPS_TO_RAS as LPS
+from pipeline.matching.registration import affine_from_sitk, matrix_to_ras, rigid_register, to_sitk
 from tests.match_fixtures import centred_affine, label_scan, rotation, world_coordinates
 
 DATA = importlib.resources.files("nibabel") / "tests" / "data"
