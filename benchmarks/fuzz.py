@@ -1,6 +1,6 @@
 """Longer fuzz run of mask loading and manifest parsing, on demand (the CI run is brief).
 
-Runs the properties of tests/test_fuzz.py with many more hypothesis examples:
+Runs the properties of tests/commands/test_fuzz.py with many more hypothesis examples:
 
     python benchmarks/fuzz.py --examples 5000            # known defects set aside, as in CI
     python benchmarks/fuzz.py --examples 5000 --strict   # known defects count as failures
@@ -34,7 +34,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     parser.add_argument("--only", choices=sorted(TARGETS), help="one target only")
     parser.add_argument("--seed", type=int, default=None, help="hypothesis seed (default random)")
     parser.add_argument("--strict", action="store_true",
-                        help="do not set aside the known defects listed in tests/test_fuzz.py")
+                        help="do not set aside the known defects listed in tests/commands/test_fuzz.py")
     return parser.parse_args(argv)
 
 

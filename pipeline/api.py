@@ -92,7 +92,7 @@ def fit_growth(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *
                ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """fits.tsv, group_fits.tsv and unfitted.tsv rows; ``events`` has subject, day, event[,
     lesion]. A lesion phase where no law could be fitted (fewer sessions than any law has
-    parameters) has no row in fits.tsv (contract) but one in ``unfitted`` saying why."""
+    parameters) has no row in fits.tsv (docs/outputs.md §4.7) but one in ``unfitted`` saying why."""
     from pipeline.growth import group_fits as groupfit
     from pipeline.growth import lesion_fits as growth
     from pipeline.growth import phases

@@ -1,4 +1,4 @@
-"""Stage-1 task functions that misbehave on purpose, for tests/test_faults.py.
+"""Stage-1 task functions that misbehave on purpose, for tests/run/test_faults.py.
 
 They live in a module of their own so that worker processes of ``pipeline.run.executors.run_tasks``
 can

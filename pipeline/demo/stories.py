@@ -167,7 +167,7 @@ class SubjectPlan:
         return next(s for s, d in enumerate(self.days) if lesion.blobs(d))
 
     def lesion_ids(self) -> dict[str, int]:
-        """Ids as the contract numbers them: first appearance, ties by larger volume."""
+        """Ids as docs/outputs.md §4.5 numbers them: first appearance, ties by larger volume."""
         def order(les: LesionPlan) -> tuple[int, float]:
             s = self.first_session(les)
             return s, -sum(b.volume_mm3 for b in les.blobs(self.days[s]))

@@ -107,7 +107,7 @@ def aicc(rss: np.ndarray, n: int, p: int, sigma: float) -> np.ndarray:
 
     Unknown error (``sigma == 0``): k = p + 1, AIC = n ln(RSS/n) + 2k; known: k = p,
     AIC = RSS/sigma^2 + 2k; AICc = AIC + 2k(k+1)/(n-k-1), ``nan`` when n <= k + 1
-    (REFERENCES 1.6, C18).
+    (docs/methods.md §1.6, check value C18).
 
     Examples
     --------

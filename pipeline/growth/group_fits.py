@@ -21,8 +21,8 @@ Research use only: see ``pipeline.DISCLAIMER``.
 
 References
 ----------
-Closed form and the k parameterisation: REFERENCES.md section 1.1 (standard calculus).
-Shared-exponent joint least squares: REFERENCES.md section 1.7.
+Closed form and the k parameterisation: docs/methods.md §1.1 (standard calculus).
+Shared-exponent joint least squares: docs/methods.md §1.7.
 Profile likelihood with an F threshold: Bates DM, Watts DG. Nonlinear Regression Analysis and Its
 Applications. Wiley 1988; Venzon DJ, Moolgavkar SH. Appl Stat 1988;37:87-94.
 """
@@ -489,7 +489,8 @@ def fit_groups(phased: pd.DataFrame, *, settings: FitSettings = _DEFAULT_SETTING
     confidence : float, optional
         Level of the profile-likelihood interval (default 0.95).
     min_sessions : int
-        A lesion joins its (group, phase) with at least this many fitted sessions (contract: 3).
+        A lesion joins its (group, phase) with at least this many fitted sessions (docs/outputs.md
+        §4.8: 3).
 
     Returns
     -------

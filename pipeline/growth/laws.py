@@ -4,7 +4,7 @@ Every law is a :class:`Law`: a name, the ODE it solves (printed next to the name
 its parameter names, a vectorised ``log_volume(t, theta)`` and the right-hand side of the ODE
 (used by the tests against numerical integration). All laws share the parameters ``log_v0``
 (natural log of the volume at the window's first day, ``t = 0``) and an initial specific growth
-rate (1/day), so that every fit is invariant to the volume unit (REFERENCES 1.1, 1.4).
+rate (1/day), so that every fit is invariant to the volume unit (docs/methods.md §1.1, §1.4).
 
 ``theta`` is an array ``(..., p)``; ``t`` an array ``(..., n)`` of days since the window start; the
 result broadcasts to ``(..., n)``. Values outside a law's domain (beyond a finite-time singularity,
@@ -82,7 +82,8 @@ def _col(theta: Array, j: int) -> Array:
 
 # --- power law: dV/dt = alpha V^beta, with k = alpha V0^(beta-1) ---------------------------------
 # V = V0 (1 + (1-beta) k t)^(1/(1-beta)) = V0 exp(log1p((1-beta) k t) / (1-beta))
-# (closed form by the substitution u = V^(1-beta), REFERENCES 1.1; beta = 1 gives V0 exp(k t)).
+# (closed form by the substitution u = V^(1-beta), docs/methods.md §1.1; beta = 1 gives V0 exp(k
+# t)).
 # For beta > 1 and k > 0 the curve blows up at t* = 1 / ((beta-1) k).
 
 def _power_log_volume(t: Array, theta: Array) -> Array:
@@ -98,7 +99,7 @@ def _power_rhs(t: float, v: Array, theta: Array) -> Array:
 
 
 def _power_gain_time(theta: Array, t: Array, log_gain: float) -> Array:
-    """Days for the curve to grow by ``exp(log_gain)`` from ``t``: DT(V) of REFERENCES 1.1."""
+    """Days for the curve to grow by ``exp(log_gain)`` from ``t``: DT(V) of docs/methods.md §1.1."""
     k, beta = theta[..., 1], theta[..., 2]
     u = 1.0 - beta
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -141,7 +142,7 @@ def _surface_gain_time(theta: Array, t: Array, log_gain: float) -> Array:
 
 
 # --- Gompertz (time form): dV/dt = k exp(-c t) V; V = V0 exp((k/c)(1 - exp(-c t))) --------------
-# Equivalently dV/dt = c V ln(K/V) with K = V0 exp(k/c) (REFERENCES 1.1).
+# Equivalently dV/dt = c V ln(K/V) with K = V0 exp(k/c) (docs/methods.md §1.1).
 # c >= 0; c = 0 is exponential.
 
 def _gompertz_log_volume(t: Array, theta: Array) -> Array:
@@ -333,7 +334,8 @@ def power_three_point(t: Array, log_v: Array) -> tuple[Array, Array, Array, Arra
 
     With ``u = 1 - beta`` the volume ``V^u`` is a straight line in ``t``, so the middle volume is
     the weighted power mean of order ``u`` of the outer two: ``V1^u = w0 V0^u + w2 V2^u``,
-    ``w0 = (t2 - t1)/(t2 - t0)``, ``w2 = (t1 - t0)/(t2 - t0)`` (REFERENCES 1.5, C9-C13). The root
+    ``w0 = (t2 - t1)/(t2 - t0)``, ``w2 = (t1 - t0)/(t2 - t0)`` (docs/methods.md §1.5, check values
+    C9-C13). The root
     is sought for ``u`` in ``[-30, 30]`` by bisection of the divided equation
     ``[(V1^u - V0^u)/(t1 - t0) - (V2^u - V1^u)/(t2 - t1)] / u``, which removes the spurious root
     ``u = 0`` (at ``u = 0`` it equals the difference of the two log-slopes). A solution exists

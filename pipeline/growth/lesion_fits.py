@@ -1,7 +1,8 @@
 """Stage 3: fit growth laws to every lesion and phase (``fits.tsv`` rows).
 
 One row per (subject, lesion, phase, model). Fits minimise squared log-volume residuals
-(multiplicative error; REFERENCES 1.4) with bounded parameters and several starts; the power law
+(multiplicative error; docs/methods.md §1.4) with bounded parameters and several starts; the power
+law
 dV/dt = alpha V^beta is fitted as (V0, k = alpha V0^(beta-1), beta), which keeps beta free of
 the volume unit and stable through beta = 1 (:mod:`pipeline.growth.laws`).
 
@@ -28,7 +29,7 @@ the volume unit and stable through beta = 1 (:mod:`pipeline.growth.laws`).
 
 Derived figures: ``doubling_time_days`` = days for the fitted curve to double from the fitted
 volume at the last fitted session (power law: DT(V) = V^(1-b)(2^(1-b) - 1)/(alpha(1-b)),
-REFERENCES 1.1); ``sgr_per_day`` = ln(V_end/V_start)/(t_end - t_start) on the fitted curve
+docs/methods.md §1.1); ``sgr_per_day`` = ln(V_end/V_start)/(t_end - t_start) on the fitted curve
 (specific growth rate, Mehrara et al. Cancer Res 2007;67:3970-3975; DT = ln2/SGR for exponential
 growth); ``forecast_mm3`` at ``forecast_day`` = last fitted day + ``forecast_days`` with a
 prediction interval (delta method plus the measurement error, t or normal quantile); a forecast
@@ -250,7 +251,7 @@ def fit_lesions(phased: pd.DataFrame, *, settings: FitSettings = FitSettings()) 
     Returns
     -------
     pandas.DataFrame
-        ``fits.tsv`` rows; columns :data:`COLUMNS` (contract columns first).
+        ``fits.tsv`` rows; columns :data:`COLUMNS` (key columns of docs/outputs.md first).
 
     Examples
     --------

@@ -1,6 +1,7 @@
 """Split each lesion's series into treatment phases and mark which sessions enter the fits.
 
-Rules (contract, ``fits.tsv``): a lesion is ``untreated`` before the first event that applies to it,
+Rules (docs/outputs.md §4.7 and §5.7, ``fits.tsv``): a lesion is ``untreated`` before the first
+event that applies to it,
 then ``after-<event>`` (``after-<event>-2`` for the second event of the same name, and so on). A
 session on an event's day belongs to the phase before it (imaging precedes treatment that day).
 An event with a ``lesion`` applies to that lesion only; without one, to every lesion of the subject.

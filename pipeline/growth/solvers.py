@@ -1,6 +1,7 @@
 """Array numerics behind :mod:`pipeline.growth`: many small least-squares fits at once.
 
-All fits minimise the residual sum of squares of log-volume (multiplicative error, REFERENCES 1.4)
+All fits minimise the residual sum of squares of log-volume (multiplicative error, docs/methods.md
+§1.4)
 for ``M`` series of equal length ``n`` at the same time (one numpy operation per step, no
 per-lesion Python loop), which is what makes thousands of lesions take well under a second.
 

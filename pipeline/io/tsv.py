@@ -30,7 +30,8 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
                 columns: Iterable[str] | None = None) -> None:
     """Write ``table`` as a BIDS-style TSV, atomically.
 
-    ``columns`` fixes the order of the first columns (the contract's); any other columns follow
+    ``columns`` fixes the order of the first columns (the key columns of docs/outputs.md); any other
+    columns follow
     in their current order. Missing values are written ``n/a``; booleans as ``true``/``false``.
     A number that is not finite (``inf``, ``-inf``, ``nan``) is written ``n/a`` too, in every
     column, so no table ever holds ``inf`` or ``nan`` as text (the producing stage says why in
@@ -76,7 +77,7 @@ def _ordered(table: pd.DataFrame, columns: Iterable[str] | None) -> pd.DataFrame
     first = [c for c in columns if c in table.columns]
     missing = [c for c in columns if c not in table.columns]
     if missing:
-        raise KeyError(f"table lacks contract columns {missing}")
+        raise KeyError(f"table lacks key columns {missing}")
     rest = [c for c in table.columns if c not in first]
     return table[first + rest]
 

@@ -2,7 +2,7 @@
 
 A component is named by ``(session_index, component)`` (``CompKey``), sessions in time order.
 A *membership* maps every component to a lesion label; *links* join components of different
-sessions. Everything here follows the contract's rules behind ``longitudinal.tsv``:
+sessions. Everything here follows the rules behind ``longitudinal.tsv`` in docs/outputs.md §4.5:
 
 - ids: positive integers numbered by first appearance, ties by larger volume at that session
   (then by smaller component number), equal to the values of the track images;
@@ -62,7 +62,8 @@ def link_relations(links: Sequence[Link]) -> list[str]:
 
 def number_lesions(membership: Mapping[CompKey, Hashable],
                    volumes: Mapping[CompKey, float]) -> dict[Hashable, int]:
-    """Contract ids 1..n: by first session, then larger volume there, then smaller component.
+    """Lesion ids 1..n (docs/outputs.md §4.5): by first session, then larger volume there, then
+    smaller component.
 
     Examples
     --------
@@ -85,7 +86,8 @@ def number_lesions(membership: Mapping[CompKey, Hashable],
 
 def track_rows(n_sessions: int, membership: Mapping[CompKey, int],
                volumes: Mapping[CompKey, float], links: Sequence[Link]) -> list[dict]:
-    """One row per lesion (contract id) and session from its first appearance on.
+    """One row per lesion (lesion id, docs/outputs.md §4.5) and session from its first appearance
+    on.
 
     Rows carry ``lesion``, ``session_index``, ``volume_mm3``, ``status``, ``components``,
     ``merged_into`` and ``merged_from`` (text: an id, comma-separated ids, or '').

@@ -247,7 +247,7 @@ def _event_row(row: pd.Series, kind: str, manifest_kind: str, origins: dict[str,
     shift = 0.0 if kind == "day" and manifest_kind == "date" else origins.get(row.subject, 0.0)
     when = round(value - shift, 6)
     # a date without a time stands for the whole day: sessions imaged that day, at any
-    # time, belong to the phase before it (contract: imaging precedes treatment)
+    # time, belong to the phase before it (docs/outputs.md §5.4: imaging precedes treatment)
     boundary = when + 1.0 - 1e-6 if kind == "date" and len(row[kind].strip()) == 10 else when
     lesion = float(row.lesion) if has_lesion and row.lesion else np.nan
     if not np.isnan(lesion) and (lesion < 1 or lesion != int(lesion)):

@@ -47,7 +47,7 @@ class LabelledScan:
         return full
 
 
-#: Columns of lesions.tsv written by this stage, in order (contract columns first).
+#: Columns of lesions.tsv written by this stage, in order (key columns of docs/outputs.md first).
 LESION_COLUMNS = ("subject", "session", "day", "component", "label", "voxels", "volume_mm3",
                   "centroid_x_mm", "centroid_y_mm", "centroid_z_mm", "max_axial_diameter_mm",
                   "equivalent_diameter_mm", "bbox_i_min", "bbox_i_max", "bbox_j_min",

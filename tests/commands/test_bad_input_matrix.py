@@ -1,9 +1,11 @@
 """Bad-input matrix through ``lesion-growth run`` (issue 7, item 1).
 
-Each case asserts, as the contract (CONTRACT.md "Exit status", "Rules behind the columns") asks:
+Each case asserts, as docs/outputs.md (§1 "Installation and exit status", §5 "Rules behind the
+columns") asks:
 one line on stderr naming the subject/session, the file and the reason; one ``errors.tsv`` row; exit
 status 1; and every good row still present and correct. Usage and configuration errors exit 2 before
-any work starts. Cases already covered for ``volumes`` by tests/test_bad_inputs.py are not repeated.
+any work starts. Cases already covered for ``volumes`` by tests/commands/test_bad_inputs.py are not
+repeated.
 
 Header layouts follow the NIfTI-1 standard (nifti1.h); nibabel is the independent writer of every
 file. Cases that once showed a defect (named D1-D20 below) stay as regression tests.
@@ -86,7 +88,7 @@ def assert_good_subject_intact(out: Path) -> None:
 def assert_reported(out: Path, err: str, subject: str, file: str, words: str, *,
                     sessions=("1",)) -> None:
     """One errors.tsv row per refused session naming the file and the reason, and one stderr
-    line per row naming the subject, the session and the reason (contract: exit status,
+    line per row naming the subject, the session and the reason (docs/outputs.md §1: exit status,
     messages)."""
     errors = errors_of(out)
     mine = errors[errors.subject == subject]
@@ -222,7 +224,8 @@ def many_bad(tmp_path_factory):
 
 
 def test_many_bad_masks_exit_1_and_good_rows_intact(many_bad):
-    # Reference: contract, exit status 1 = some inputs failed, the rest processed and written.
+    # Reference: docs/outputs.md §1, exit status 1 = some inputs failed, the rest processed and
+    # written.
     assert many_bad["code"] == 1
     assert_good_subject_intact(many_bad["out"])
 
@@ -232,8 +235,10 @@ def test_many_bad_masks_exit_1_and_good_rows_intact(many_bad):
 def test_bad_mask_is_one_error_row_and_one_line(many_bad, subject):
     # Reference: NIfTI-1 standard (nifti1.h): pixdim[i] "voxel width ... (positive)"; the sform/
     # qform must give an invertible finite voxel -> world map; scaled value = scl_slope * stored
-    # + scl_inter, and the contract requires integral labels; datatypes a program does not handle
-    # must "fail gracefully". Contract: one line and one errors.tsv row per refused input.
+    # + scl_inter, and docs/outputs.md §5.1 requires integral labels; datatypes a program does not
+    # handle
+    # must "fail gracefully". docs/outputs.md §1 and §4.10: one line and one errors.tsv row per
+    # refused input.
     file, _, words, *_ = MASK_CASES[subject]
     out = many_bad["out"]
     assert_reported(out, many_bad["err"], subject, file, words)
@@ -272,7 +277,8 @@ def test_sform_qform_disagreement_warns_and_uses_sform(many_bad, capsys):
     s for s, c in MASK_CASES.items() if not c[4]])
 def test_check_lists_unusable_mask_without_crashing(many_bad, subject, capsys):
     # Reference: NIfTI-1 standard (nifti1.h): a program "should fail gracefully" on a header it
-    # cannot use; contract: `check` exits 1 and lists the unusable inputs, one line each.
+    # cannot use; docs/outputs.md §5.8: `check` exits 1 and lists the unusable inputs, one line
+    # each.
     folder = many_bad["folder"]
     file = MASK_CASES[subject][0]
     manifest = write_manifest(folder, GOOD_ROWS + [(subject, "1", file, "2024-01-01")],
@@ -289,7 +295,8 @@ def test_impossible_date_is_an_error_row(many_bad):
 
 
 def test_check_reports_image_grid_mismatch(many_bad, capsys):
-    # Reference: contract, `check` validates geometry; the image (10, 12, 8) cannot sit under the
+    # Reference: docs/outputs.md §2, `check` validates geometry; the image (10, 12, 8) cannot sit
+    # under the
     # mask (12, 12, 8).
     main(["check", str(many_bad["checkable"])])
     lines = [x for x in capsys.readouterr().out.splitlines() if "\tgrid\t" in x]
@@ -299,7 +306,8 @@ def test_check_reports_image_grid_mismatch(many_bad, capsys):
 
 
 def test_run_reports_image_grid_mismatch_and_keeps_lesions(many_bad):
-    # Reference: contract ("check" validates geometry; errors.tsv lists inputs that failed); the
+    # Reference: docs/outputs.md §2 and §4.10 ("check" validates geometry; errors.tsv lists inputs
+    # that failed); the
     # brief of issue 7: the mask's lesions are still measured.
     out = many_bad["out"]
     assert_reported(out, many_bad["err"], "grid", "small.nii.gz", "does not match the mask grid")
@@ -326,7 +334,8 @@ def test_out_of_range_date_is_an_error_row(good_folder):
 
 def test_bids_subject_without_sessions_tsv(tmp_path):
     # Reference: BIDS specification, sessions file sub-<label>/sub-<label>_sessions.tsv with
-    # session_id and acq_time; without it a session cannot be dated (contract, BIDS input).
+    # session_id and acq_time; without it a session cannot be dated (docs/outputs.md §3.2, BIDS
+    # input).
     root = tmp_path / "bids"
     for subject in ("G", "N"):
         for session in ("1", "2"):
@@ -373,7 +382,8 @@ def run_with_events(folder: Path, manifest, events: str):
 
 
 def test_events_naming_unknown_subject(two_subjects):
-    # Reference: contract (events table; errors.tsv lists inputs that failed). Row 2 of the events
+    # Reference: docs/outputs.md §3.3 (events table; errors.tsv lists inputs that failed). Row 2 of
+    # the events
     # file names subject Z, absent from the input.
     out, code, err = run_with_events(*two_subjects, "subject\tdate\tevent\n"
                                      "Z\t2024-01-10\tradiosurgery\nH\t2024-01-10\tradiosurgery\n")
@@ -389,7 +399,7 @@ def test_events_naming_unknown_subject(two_subjects):
 
 def test_events_naming_unknown_lesion(two_subjects):
     # Reference: issue 7 list ("an events ... file that names unknown subjects or lesions") and
-    # the contract (events `lesion` names one lesion track).
+    # docs/outputs.md §3.3 (events `lesion` names one lesion track).
     out, code, err = run_with_events(*two_subjects, "subject\tdate\tevent\tlesion\n"
                                      "H\t2024-01-10\tradiosurgery\t99\n")
     assert code == 1
@@ -400,7 +410,7 @@ def test_events_naming_unknown_lesion(two_subjects):
 
 
 def test_corrections_naming_unknown_subject(two_subjects):
-    # Reference: SHARED_TABLES.md, corrections.tsv: "Unknown subject/session/component/lesion
+    # Reference: docs/outputs.md §3.4, corrections.tsv: "Unknown subject/session/component/lesion
     # ids are input errors naming the row".
     folder, manifest = two_subjects
     (folder / "corrections.tsv").write_text("subject\tsession\tcomponent\tlesion\nZ\t1\t1\t1\n")
@@ -415,7 +425,7 @@ def test_corrections_naming_unknown_subject(two_subjects):
 
 
 def test_corrections_naming_unknown_lesion(two_subjects):
-    # Reference: SHARED_TABLES.md (unknown ids are input errors naming the row) and the contract
+    # Reference: docs/outputs.md §3.4 (unknown ids are input errors naming the row) and §1
     # (exit 1: the rest processed and written; a message on stderr for every failed input).
     folder, manifest = two_subjects
     plain = folder / "plain"
@@ -452,7 +462,8 @@ def test_correction_errors_name_the_file_given(two_subjects):
 
 
 def test_label_with_path_separator_is_refused_and_nothing_escapes_out(good_folder):
-    # Reference: contract (outputs are written in OUT; file names are built from the labels);
+    # Reference: docs/outputs.md §3.1 (outputs are written in OUT; file names are built from the
+    # labels);
     # BIDS labels are alphanumeric (BIDS specification, entities).
     rows = GOOD_ROWS + [("../../../x", "1", "good.nii.gz", "2024-01-01"),
                         ("../../../x", "2", "good.nii.gz", "2024-02-01")]
@@ -466,7 +477,8 @@ def test_label_with_path_separator_is_refused_and_nothing_escapes_out(good_folde
 
 
 def test_cohort_with_one_session_per_subject_runs(good_folder):
-    # Reference: contract ("A law is fitted only when the phase has at least as many sessions as
+    # Reference: docs/outputs.md §4.7 ("A law is fitted only when the phase has at least as many
+    # sessions as
     # the law has free parameters; otherwise no row is written for it"): a first export with
     # one session per patient is valid input. (Regression test of defect D11: this input ended
     # the whole run with a pandas TypeError in growth_notes._choose_best.)
@@ -507,7 +519,8 @@ def test_table_rows_ending_with_a_tab_keep_their_columns(tmp_path):
 
 
 def test_usage_message_is_one_line_when_the_input_holds_a_newline(good_folder):
-    # Reference: contract, messages are "one line a person understands"; RFC 4180 quoting lets a
+    # Reference: docs/outputs.md §1, messages are "one line a person understands"; RFC 4180 quoting
+    # lets a
     # field (here a column name) hold a line break.
     (good_folder / "manifest.tsv").write_text('"sub\nject"\tsession\tmask\tdate\n'
                                               "G\t1\tgood.nii.gz\t2024-01-01\n")
@@ -553,7 +566,7 @@ GOOD_MANIFEST = "subject\tsession\tmask\tdate\nG\t1\tgood.nii.gz\t2024-01-01\n" 
 
 @pytest.mark.parametrize("manifest_text,extra,words", _usage_cases())
 def test_usage_errors_exit_2_before_any_work(good_folder, manifest_text, extra, words):
-    # Reference: contract, exit status 2 = usage or configuration error, nothing computed.
+    # Reference: docs/outputs.md §1, exit status 2 = usage or configuration error, nothing computed.
     folder = good_folder
     (folder / "bad.toml").write_text("[volumes]\nconectivity = 6\n")
     (folder / "badevents.tsv").write_text("subject\twhen\nG\t3\n")

@@ -1,6 +1,6 @@
 """Bad input: one line naming file and reason, an errors.tsv row, exit status 1, good rows kept.
 
-The cases follow the issue's list; expectations are the contract's rules (CONTRACT.md)."""
+The cases follow the issue's list; expectations are the rules of docs/outputs.md."""
 from __future__ import annotations
 
 import gzip
@@ -115,7 +115,7 @@ def test_row_problems(tmp_path, capsys):
     ("subject\tsession\tmask\tdate\n", "no rows"),
     ("subject\tmask\tdate\nA\tm.nii\t2024-01-01\n", "lacks column(s) session"),
     ("subject\tsession\tmask\nA\t1\tm.nii\n", "date or day"),
-    # found by tests/test_fuzz.py: two headers that differ only in spaces
+    # found by tests/commands/test_fuzz.py: two headers that differ only in spaces
     ("subject\tsession\tmask\tdate\t \t\xa0\nA\t1\tm.nii\t2024-01-01\t\t\n",
      "more than once"),
 ])

@@ -22,15 +22,16 @@ def finished(tmp_path_factory):
 
 def test_exit_status_and_known_failure(finished):
     folder, _, code = finished
-    assert code == 1   # contract: some inputs failed, the rest written
+    assert code == 1   # docs/outputs.md §1: some inputs failed, the rest written
     errors = read_table(folder / "out" / "errors.tsv")
     assert errors[["subject", "session", "stage"]].values.tolist() == [["B", "4", "volumes"]]
     assert errors.reason[0] == "B_missing.nii.gz: file not found"
 
 
 def test_known_lesion_volumes_and_beta(finished):
-    # Reference: the closed form of dV/dt = alpha V^beta (REFERENCES.md 1.1) used to draw the
-    # spheres; voxelised spheres of radius >= 4.5 voxels deviate by < 8 % (REFERENCES.md C23).
+    # Reference: the closed form of dV/dt = alpha V^beta (docs/methods.md §1.1) used to draw the
+    # spheres; voxelised spheres of radius >= 4.5 voxels deviate by < 8 % (docs/methods.md, check
+    # value C23).
     folder, truth, _ = finished
     longitudinal = read_table(folder / "out" / "longitudinal.tsv")
     track = longitudinal[(longitudinal.subject == "A") & (longitudinal.lesion == 1)]

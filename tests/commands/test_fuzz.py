@@ -43,7 +43,8 @@ TIME_LIMIT_S = 10
 
 
 def assert_one_line(message: str) -> None:
-    """Contract: a message is one line (defect D15 when the input's own text brings a newline)."""
+    """docs/outputs.md §1: a message is one line (defect D15 when the input's own text brings a
+    newline)."""
     if "\n" in message:
         excuse_known(AssertionError(f"D15 message of several lines: {message!r}"))
 
@@ -246,7 +247,7 @@ def check_manifest_text(text: str | bytes, suffix: str) -> None:
 @settings(max_examples=60)
 @given(case=manifest_texts())
 def test_read_manifest_generated_tables(case):
-    # Reference: hypothesis-generated manifest tables (contract: manifest columns).
+    # Reference: hypothesis-generated manifest tables (docs/outputs.md §3.1: manifest columns).
     check_manifest_text(*case)
 
 

@@ -49,7 +49,7 @@ def inputs(tmp_path_factory):
 @pytest.mark.parametrize("command", COMMANDS)
 @pytest.mark.parametrize("where", ["existing file", "under a file", "not creatable"])
 def test_output_folder_problem_is_one_line_exit_2_nothing_written(inputs, command, where):
-    # Reference: contract, exit status 2: usage error, nothing computed.
+    # Reference: docs/outputs.md §1, exit status 2: usage error, nothing computed.
     out = {"existing file": inputs / "a-file", "under a file": inputs / "a-file" / "out",
            "not creatable": inputs / ("x" * (NAME_MAX_BYTES + 1)) / "out"}[where]
     before = _tree(inputs)
@@ -72,7 +72,8 @@ def _unshare_works(folder: Path) -> bool:
 
 @pytest.mark.parametrize("command", COMMANDS)
 def test_read_only_output_folder_is_one_line_exit_2_nothing_written(inputs, tmp_path, command):
-    # Reference: contract, exit status 2. A real read-only file system: the folder of an earlier
+    # Reference: docs/outputs.md §1, exit status 2. A real read-only file system: the folder of an
+    # earlier
     # run bind-mounted read-only in a private mount namespace (util-linux unshare, mount).
     import shutil
     import subprocess

@@ -1,4 +1,4 @@
-"""The invented demo cohort: deterministic files that follow the contract and the truth.
+"""The invented demo cohort: deterministic files that follow docs/outputs.md and the truth.
 
 The cohort is generated once per module (about 10 s on 2 cores); the checks read it back with
 nibabel, scipy, SimpleITK and scikit-learn, which are independent of the generator.
@@ -108,7 +108,7 @@ def test_gzip_headers_carry_no_time_or_name(cohort):
 
 
 def test_manifest_events_outcomes_follow_the_contract(cohort):
-    # Reference: the project's CONTRACT.md (manifest columns, events table); ISO 8601 dates
+    # Reference: docs/outputs.md §3.1 and §3.3 (manifest columns, events table); ISO 8601 dates
     # parsed by datetime.date.fromisoformat.
     folder, paths, truth = cohort
     manifest = read_table(paths.manifest)
@@ -283,7 +283,7 @@ def test_lesion_positions_agree_across_grids(cohort, measured):
 
 
 def test_lesion_ids_follow_first_appearance_then_volume(cohort, measured):
-    # Reference: CONTRACT.md `lesion` rule, applied to volumes measured from the masks.
+    # Reference: docs/outputs.md §4.5 `lesion` rule, applied to volumes measured from the masks.
     _, _, truth = cohort
     first: dict[str, dict[str, tuple]] = {}
     for subject, ses, lid, _blob, comp in _matched(cohort, measured):

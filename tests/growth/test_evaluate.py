@@ -12,7 +12,7 @@ from pipeline.growth.evaluate import (COLUMNS, THRESHOLD_COLUMNS, auc_components
 
 sklearn_metrics = pytest.importorskip("sklearn.metrics")  # test-only reference library
 
-# Reference: REFERENCES.md C24 (values computed there with scipy and scikit-learn).
+# Reference: docs/methods.md, check value C24 (values computed there with scipy and scikit-learn).
 C24_POS, C24_NEG = [0.9, 0.8, 0.7, 0.55], [0.6, 0.4, 0.3, 0.2, 0.1]
 C24_TIES_POS, C24_TIES_NEG = [1.0, 2.0, 2.0, 3.0], [0.0, 2.0, 2.0, 1.0]
 
@@ -32,7 +32,7 @@ def _tables(x_pos, x_neg, *, subjects=None, figure="beta", outcome=("1", "0")):
 
 def _delong_by_pairs(x_pos, x_neg):
     # Reference: DeLong et al. Biometrics 1988 structural components, computed directly from the
-    # pairwise kernel psi(x, y) = 1[x > y] + 0.5 1[x == y] (REFERENCES.md section 6).
+    # pairwise kernel psi(x, y) = 1[x > y] + 0.5 1[x == y] (docs/methods.md §6).
     xp, xn = np.asarray(x_pos)[:, None], np.asarray(x_neg)[None, :]
     psi = (xp > xn) + 0.5 * (xp == xn)
     v10, v01 = psi.mean(axis=1), psi.mean(axis=0)
@@ -53,7 +53,8 @@ def test_c24_auc_u_and_delong(x_pos, x_neg, auc, u, se):
     y = [1] * len(x_pos) + [0] * len(x_neg)
     assert row.auc == pytest.approx(sklearn_metrics.roc_auc_score(y, list(x_pos) + list(x_neg)))
     assert row.auc == pytest.approx(auc)
-    # Reference: structural-components formula computed independently above; C24 value.
+    # Reference: structural-components formula computed independently above; docs/methods.md, check
+    # value C24.
     assert row.delong_se == pytest.approx(_delong_by_pairs(x_pos, x_neg), rel=1e-12)
     assert row.delong_se == pytest.approx(se, abs=1e-6)
 

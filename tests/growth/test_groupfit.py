@@ -14,7 +14,7 @@ from pipeline.settings import FitSettings
 
 
 def _closed_form(v0, k, beta, t):
-    # Reference: REFERENCES.md 1.1, V = V0 (1 + (1 - beta) k t)^(1 / (1 - beta)),
+    # Reference: docs/methods.md §1.1, V = V0 (1 + (1 - beta) k t)^(1 / (1 - beta)),
     # k = alpha V0^(beta - 1); written with log1p so that beta within 1e-12 of 1 stays exact.
     if beta == 1.0:
         return v0 * np.exp(k * t)
@@ -62,7 +62,7 @@ def test_recovers_shared_beta_from_ode_series():
 
 @pytest.mark.parametrize("beta", [1.0, 1.0 + 1e-12, 0.5, 1.6])
 def test_noise_free_series_give_beta_exactly(beta):
-    # Reference: closed form (REFERENCES.md 1.1); also the beta -> 1 limit through log1p.
+    # Reference: closed form (docs/methods.md §1.1); also the beta -> 1 limit through log1p.
     rng = np.random.default_rng(3)
     table = _cohort(rng, n_lesions=12, n_sessions=4, beta=beta, sigma=0.0)
     fit = fit_groups(table).iloc[0]
@@ -124,7 +124,8 @@ def test_sparse_jacobian_matches_dense_and_nested_curve_fit():
 
 
 def test_log_growth_is_finite_and_continuous_past_the_singularity():
-    # Reference: REFERENCES.md 1.1/1.8, t* = 1 / ((beta - 1) k); the model must stay finite so the
+    # Reference: docs/methods.md §1.1/§1.8, t* = 1 / ((beta - 1) k); the model must stay finite so
+    # the
     # solver can step back, and be continuous where the linear continuation starts.
     tau = np.linspace(0.0, 1.0, 11)
     g, _ = groupfit._log_growth(tau, np.array(3.0), 1.5)  # t* = 1 / (0.5 * 3) = 2/3 < 1
@@ -138,7 +139,7 @@ def test_log_growth_is_finite_and_continuous_past_the_singularity():
 
 
 def test_no_singularity_inside_any_window_near_blow_up():
-    # Reference: REFERENCES.md 1.8 - a fit is valid only when t* lies after the fitted window.
+    # Reference: docs/methods.md §1.8 - a fit is valid only when t* lies after the fitted window.
     # Lesions whose true t* lies just 3-10 % after their last session.
     rng = np.random.default_rng(8)
     rows = []
@@ -212,7 +213,8 @@ def test_phase_without_qualifying_lesions_is_reported():
 
 
 def test_single_exact_lesion_has_no_interval_unless_error_is_known():
-    # Reference: REFERENCES.md C9 - (1, 4, 9) at t = 0, 1, 2 is solved exactly by beta = 0.5.
+    # Reference: docs/methods.md, check value C9 - (1, 4, 9) at t = 0, 1, 2 is solved exactly by
+    # beta = 0.5.
     table = pd.DataFrame(dict(subject="s1", lesion=1, day=[0.0, 1.0, 2.0],
                               volume_mm3=[1.0, 4.0, 9.0], phase="untreated", in_fit=True))
     fit = fit_groups(table).iloc[0]
@@ -225,7 +227,8 @@ def test_single_exact_lesion_has_no_interval_unless_error_is_known():
 
 
 def test_beta_is_unit_free_and_time_origin_free():
-    # Reference: REFERENCES.md 1.1 and C14 - rescaling volumes (mm^3 -> mL) leaves beta unchanged;
+    # Reference: docs/methods.md §1.1 and check value C14 - rescaling volumes (mm^3 -> mL) leaves
+    # beta unchanged;
     # the law is autonomous, so shifting every day leaves it unchanged too.
     rng = np.random.default_rng(9)
     table = _cohort(rng, n_lesions=10, n_sessions=5, beta=1.2, sigma=0.1)
@@ -278,7 +281,7 @@ def test_beta_bounds_from_settings_and_at_bound_status():
 
 def test_lesions_without_change_do_not_narrow_the_interval():
     # Reference: a series with the same volume at every session is fitted exactly by k = 0 at
-    # every beta (closed form, REFERENCES.md 1.1), so it carries no information on beta; the
+    # every beta (closed form, docs/methods.md §1.1), so it carries no information on beta; the
     # interval must stay that of the informative lesion alone. beta of that lesion is checked
     # against scipy.optimize.least_squares on the closed form (an independent fit).
     days = np.array([0.0, 30, 60, 90, 120])

@@ -33,7 +33,7 @@ def _simulate(rng, m, n, beta, sigma, fold=10.0, span=300.0):
 
 
 def test_quantiles_c17():
-    # Reference: REFERENCES.md C17, recomputed with scipy.stats.
+    # Reference: docs/methods.md, check value C17, recomputed with scipy.stats.
     assert stats.chi2.ppf(0.95, 1) == pytest.approx(3.841459, abs=1e-6)
     assert stats.chi2.ppf(0.95, 2) == pytest.approx(5.991465, abs=1e-6)
     for df, value in [(1, 161.448), (2, 18.513), (3, 10.128), (4, 7.709)]:
@@ -41,7 +41,8 @@ def test_quantiles_c17():
 
 
 def test_aicc_c18():
-    # Reference: REFERENCES.md C18: correction 2k(k+1)/(n-k-1); k = 4 undefined for n <= 5,
+    # Reference: docs/methods.md, check value C18: correction 2k(k+1)/(n-k-1); k = 4 undefined for n
+    # <= 5,
     # +40 at n = 6, +8 at n = 10; k = 3: +24 at n = 5, undefined at n = 4.
     rss = np.array([0.3])
     for n, p, corr in [(6, 3, 40.0), (10, 3, 8.0), (5, 2, 24.0)]:
@@ -52,7 +53,7 @@ def test_aicc_c18():
 
 def test_profile_endpoints_sit_on_the_f_threshold():
     # Reference: profile-likelihood interval {b: (RSS(b) - RSS_min)/(RSS_min/(n-p)) <= F(1,n-p)}
-    # (Bates and Watts 1988; REFERENCES 1.6); RSS_min checked against scipy least_squares.
+    # (Bates and Watts 1988; docs/methods.md §1.6); RSS_min checked against scipy least_squares.
     rng = np.random.default_rng(3)
     t, y = _simulate(rng, 5, 7, 0.8, 0.08, fold=30.0)
     out = fit_series(LAWS["power"], t, y)
@@ -89,7 +90,8 @@ def test_recovery_and_coverage_by_simulation(beta, sigma_cfg):
 
 
 def test_exact_fit_has_no_interval_unless_sigma_known():
-    # Reference: REFERENCES 1.5 (n = p: zero residual dof) and C15 (ill-conditioning).
+    # Reference: docs/methods.md §1.5 (n = p: zero residual dof) and check value C15
+    # (ill-conditioning).
     phased = _phased([0, 90, 180], [100, 135, 225])
     fits = fit_lesions(phased, settings=FitSettings(models=("power",)))
     row = fits.iloc[0]
@@ -110,7 +112,8 @@ def test_no_exact_solution_is_reported():
 
 
 def test_singularity_rule():
-    # Reference: REFERENCES 1.8: a beta > 1 fit is valid only if t* = 1/((b-1)k) lies after the
+    # Reference: docs/methods.md §1.8: a beta > 1 fit is valid only if t* = 1/((b-1)k) lies after
+    # the
     # fitted window; C3 series (b = 2, a = 0.25, V0 = 1) has t* = 4.
     days = [0.0, 1.0, 2.0, 3.0, 3.5]
     vols = [1.0 / (1.0 - 0.25 * d) for d in days]
@@ -124,7 +127,8 @@ def test_singularity_rule():
 
 
 def test_doubling_time_and_sgr_c7():
-    # Reference: REFERENCES.md C7 (Schwartz 1961 VDT; Mehrara et al. 2007 SGR = ln2/DT):
+    # Reference: docs/methods.md, check value C7 (Schwartz 1961 VDT; Mehrara et al. 2007 SGR =
+    # ln2/DT):
     # 100 -> 200 mm^3 in 100 d: VDT = 100 d, SGR = 0.693147 %/day; +25 % in 90 d: VDT 279.566 d.
     phased = pd.concat([_phased([0, 100], [100, 200], lesion=1),
                         _phased([0, 90], [100, 125], lesion=2)], ignore_index=True)
@@ -136,7 +140,8 @@ def test_doubling_time_and_sgr_c7():
 
 
 def test_unit_invariance_c14():
-    # Reference: REFERENCES.md C14: refitting in mL leaves beta unchanged and multiplies alpha
+    # Reference: docs/methods.md, check value C14: refitting in mL leaves beta unchanged and
+    # multiplies alpha
     # by 1e-3^(1-b); b = 1.25, a = 0.01 -> 0.0562341 in mL.
     assert 0.01 * 1e-3 ** (1 - 1.25) == pytest.approx(0.0562341, rel=1e-6)
     rng = np.random.default_rng(5)
@@ -151,14 +156,14 @@ def test_unit_invariance_c14():
 
 
 def test_exponential_data_give_beta_one_c6():
-    # Reference: REFERENCES.md C6: V = 1, 2, 4 at t = 0, 1, 2 -> b = 1, a = ln 2.
+    # Reference: docs/methods.md, check value C6: V = 1, 2, 4 at t = 0, 1, 2 -> b = 1, a = ln 2.
     fits = fit_lesions(_phased([0, 1, 2], [1, 2, 4]), settings=FitSettings(models=("power",)))
     assert fits["beta"].iloc[0] == pytest.approx(1.0, abs=1e-9)
     assert fits["alpha"].iloc[0] == pytest.approx(np.log(2), rel=1e-9)
 
 
 def test_rows_best_weights_and_too_few_points():
-    # Reference: project contract (fits.tsv): a law needs as many sessions as parameters;
+    # Reference: docs/outputs.md §4.7 (fits.tsv): a law needs as many sessions as parameters;
     # best = lowest AICc; Akaike weights sum to 1 (Burnham and Anderson 2002).
     rng = np.random.default_rng(2)
     t, y = _simulate(rng, 1, 9, 0.8, 0.05, fold=20.0)
@@ -196,7 +201,7 @@ def test_failed_fit_is_a_row_not_an_exception(monkeypatch):
 
 def test_bootstrap_and_forecast_interval():
     # Reference: parametric bootstrap from the error model (Efron and Tibshirani 1993;
-    # REFERENCES 1.6): the percentile interval brackets the estimate; the forecast interval
+    # docs/methods.md §1.6): the percentile interval brackets the estimate; the forecast interval
     # brackets the forecast.
     rng = np.random.default_rng(8)
     t, y = _simulate(rng, 1, 6, 0.9, 0.05, fold=10.0)
@@ -227,7 +232,7 @@ def test_an_exact_fit_is_never_beaten_by_a_law_with_a_positive_residual():
 
 def test_a_zero_residual_with_more_parameters_wins_over_positive_residuals():
     # Reference: closed form of dV/dt = alpha V^beta, V = V0 (1 + (1 - beta) k t)^(1/(1-beta))
-    # (REFERENCES 1.1): six noise-free points fit the power law exactly; AICc as above.
+    # (docs/methods.md §1.1): six noise-free points fit the power law exactly; AICc as above.
     days = np.arange(6) * 30.0
     fits = fit_lesions(_phased(days, 50 * (1 + 0.02 * days) ** 1.5)).set_index("model")
     assert fits.loc["power", "best"] and fits["best"].sum() == 1
@@ -236,7 +241,8 @@ def test_a_zero_residual_with_more_parameters_wins_over_positive_residuals():
 
 
 def test_laws_without_aicc_are_named_when_others_are_compared():
-    # Reference: REFERENCES.md C18: with sigma estimated k = p + 1, so AICc is undefined for the
+    # Reference: docs/methods.md, check value C18: with sigma estimated k = p + 1, so AICc is
+    # undefined for the
     # 3-parameter laws (k = 4) at n = 5 and defined for the 2-parameter laws (k = 3).
     rng = np.random.default_rng(4)
     t, y = _simulate(rng, 1, 5, 0.8, 0.1, fold=8.0)
@@ -305,7 +311,7 @@ def test_counts_print_as_integers_also_when_nothing_is_fitted(tmp_path):
 
 
 def test_beta_of_a_lesion_without_change_is_n_a():
-    # Reference: closed form V = V0 (1 + (1 - beta) k t)^(1/(1-beta)) (REFERENCES 1.1) is
+    # Reference: closed form V = V0 (1 + (1 - beta) k t)^(1/(1-beta)) (docs/methods.md §1.1) is
     # constant for k = 0 whatever beta, so beta is not identifiable from a constant series.
     fits = fit_lesions(_phased([0, 30, 60, 90, 120], [500.0] * 5)).set_index("model")
     assert np.isnan(fits.loc["power", "beta"]) and np.isnan(fits.loc["power", "beta_ci_low"])

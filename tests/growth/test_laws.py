@@ -1,4 +1,5 @@
-"""Growth laws: closed forms, limits, exact 3-point solution (check values from REFERENCES.md)."""
+"""Growth laws: closed forms, limits, exact 3-point solution (check values from docs/methods.md
+§7)."""
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
@@ -34,7 +35,8 @@ CASES = [("power", _theta_power(1.0, 2.0, 0.5), 3.0),
 @pytest.mark.parametrize("name,theta,t_end", CASES)
 def test_closed_form_matches_ode(name, theta, t_end):
     # Reference: numerical integration with scipy.integrate.solve_ivp (rtol 1e-12, atol 1e-14);
-    # REFERENCES 1.8 / C1-C5 report agreement to <= 2e-11 relative, 1e-8 is a safe tolerance.
+    # docs/methods.md §1.8 / check values C1-C5 report agreement to <= 2e-11 relative, 1e-8 is a
+    # safe tolerance.
     law = LAWS[name]
     t, v_ode = _integrate(law, theta, t_end, float(np.exp(theta[0])))
     v_closed = np.exp(law.log_volume(t[None, :], theta[None, :])[0])
@@ -42,7 +44,8 @@ def test_closed_form_matches_ode(name, theta, t_end):
 
 
 def test_check_values_c1_to_c4():
-    # Reference: REFERENCES.md C1-C4 (analytic: V = (1+t)^2, (1+t)^3, blow-up t* = 4, ...),
+    # Reference: docs/methods.md, check values C1-C4 (analytic: V = (1+t)^2, (1+t)^3, blow-up t* =
+    # 4, ...),
     # recomputed here from the closed form V = (V0^(1-b) + a(1-b)t)^(1/(1-b)).
     power = LAWS["power"]
     t = np.array([[0.0, 1.0, 2.0]])
@@ -68,7 +71,7 @@ def test_check_values_c1_to_c4():
 
 
 def test_singularity_is_nan_not_error():
-    # Reference: REFERENCES 1.1: V -> inf as t -> t* = V0^(1-b)/(a(b-1)); C3 gives t* = 4.
+    # Reference: docs/methods.md §1.1: V -> inf as t -> t* = V0^(1-b)/(a(b-1)); C3 gives t* = 4.
     theta = _theta_power(1.0, 0.25, 2.0)[None, :]
     v = LAWS["power"].log_volume(np.array([[3.999, 4.0, 5.0]]), theta)[0]
     assert np.isfinite(v[0]) and v[0] > np.log(999.0)
@@ -76,7 +79,8 @@ def test_singularity_is_nan_not_error():
 
 
 def test_gompertz_and_logistic_check_values_c5():
-    # Reference: REFERENCES.md C5: Gompertz a = 0.5, c = 0.1, V0 = 1 -> K = e^5 = 148.41316;
+    # Reference: docs/methods.md, check value C5: Gompertz a = 0.5, c = 0.1, V0 = 1 -> K = e^5 =
+    # 148.41316;
     # logistic r = 0.3, K = 1000, V0 = 10 tends to K (solve_ivp cross-check in the ODE test).
     g = LAWS["gompertz"].log_volume(np.array([[1e4]]), np.array([[0.0, 0.5, 0.1]]))[0, 0]
     assert np.exp(g) == pytest.approx(148.41316, rel=1e-7)
@@ -87,7 +91,8 @@ def test_gompertz_and_logistic_check_values_c5():
 
 @pytest.mark.parametrize("delta", [1e-3, 1e-6, 1e-9, 1e-12, 0.0])
 def test_beta_to_one_limit_is_exponential(delta):
-    # Reference: analytic limit (1 + (1-b) k t)^(1/(1-b)) -> exp(k t) as b -> 1 (REFERENCES 1.1);
+    # Reference: analytic limit (1 + (1-b) k t)^(1/(1-b)) -> exp(k t) as b -> 1 (docs/methods.md
+    # §1.1);
     # first-order term: ln V = k t - (1-b) (k t)^2 / 2 + O((1-b)^2).
     t = np.array([[0.0, 10.0, 50.0, 100.0]])
     k = 0.01
@@ -104,7 +109,7 @@ def test_log1p_ratio_series_branch_matches_mpmath_free_reference():
     np.testing.assert_allclose(log1p_ratio(x), series, rtol=1e-14)
 
 
-THREE_POINT = [  # Reference: REFERENCES.md C6, C9-C13 (times 0, 1, 2 unless given)
+THREE_POINT = [  # Reference: docs/methods.md, check values C6, C9-C13 (times 0, 1, 2 unless given)
     ((0, 1, 2), (1, 4, 9), 0.5, 2.0),
     ((0, 1, 2), (1, 8, 27), 2 / 3, 3.0),
     ((0, 1, 2), (1, 2, 4), 1.0, np.log(2)),
@@ -128,7 +133,8 @@ def test_exact_three_point_solution_c9_to_c13():
 
 
 def test_ill_conditioning_c15_and_no_solution():
-    # Reference: REFERENCES.md C15: times (0, 90, 180), V = (100, 150, 225) -> b = 1.000;
+    # Reference: docs/methods.md, check value C15: times (0, 90, 180), V = (100, 150, 225) -> b =
+    # 1.000;
     # middle x0.9 -> 2.343; x1.1 -> -0.205. Non-monotone triples have no exact fit (1.5).
     t = np.tile([0.0, 90.0, 180.0], (4, 1))
     v = np.array([[100, 150, 225], [100, 135, 225], [100, 165, 225], [100, 250, 225]], float)

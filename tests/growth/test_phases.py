@@ -1,4 +1,4 @@
-"""Phases and fit exclusions (rules of the project contract, fits.tsv section)."""
+"""Phases and fit exclusions (rules of docs/outputs.md §4.7 and §5.7, fits.tsv)."""
 import numpy as np
 import pandas as pd
 import pytest
@@ -23,7 +23,7 @@ def _events(rows):
 
 
 def test_session_on_event_day_belongs_to_phase_before():
-    # Reference: project contract: "A session on an event's day belongs to the phase before it".
+    # Reference: docs/outputs.md §5.4: "A session on an event's day belongs to the phase before it".
     lon = _lon([0, 30, 60, 90], [10, 20, 30, 40])
     out = assign_phases(lon, _events([["01", 30.0, "radiosurgery", np.nan]]),
                         settings=FitSettings(from_nadir=False))
@@ -32,7 +32,7 @@ def test_session_on_event_day_belongs_to_phase_before():
 
 
 def test_lesion_specific_event_and_repeats():
-    # Reference: project contract: events with a lesion apply to that lesion only;
+    # Reference: docs/outputs.md §3.3 and §5.7: events with a lesion apply to that lesion only;
     # "after-<event>-2" for a repeat.
     lon = pd.concat([_lon([0, 10, 20, 30, 40], [5, 6, 7, 8, 9], lesion=1),
                      _lon([0, 10, 20, 30, 40], [5, 6, 7, 8, 9], lesion=2)], ignore_index=True)
@@ -46,7 +46,7 @@ def test_lesion_specific_event_and_repeats():
 
 
 def test_same_day_events_share_one_phase_and_early_event():
-    # Reference: project contract: "untreated before the first event that applies to the lesion"
+    # Reference: docs/outputs.md §5.7: "untreated before the first event that applies to the lesion"
     # (an event before the lesion's first session means it has no untreated phase).
     lon = _lon([10, 20, 30], [5, 6, 7])
     ev = _events([["01", 5.0, "resection", np.nan], ["01", 5.0, "radiosurgery", np.nan]])
@@ -67,7 +67,7 @@ def test_nadir_rule_keeps_the_decline_out():
 
 
 def test_absent_nadir_and_exclusion_reasons():
-    # Reference: REFERENCES 1.4: zero volumes are never logged (left out here, not censored).
+    # Reference: docs/methods.md §1.4: zero volumes are never logged (left out here, not censored).
     lon = _lon([0, 10, 20, 30, 40, 50], [100, 3, 0, 5, 30, np.nan],
                status=["present"] * 5 + ["merged"])
     ev = _events([["01", 5.0, "radiosurgery", np.nan]])
@@ -78,7 +78,7 @@ def test_absent_nadir_and_exclusion_reasons():
 
 
 def test_merged_sum_is_configurable():
-    # Reference: project contract: the survivor's rows from a merge on are left out unless the
+    # Reference: docs/outputs.md §4.5: the survivor's rows from a merge on are left out unless the
     # configuration asks to fit the sum.
     lon = _lon([0, 10, 20], [10, 12, 30], merged_from=["", "", "2"])
     assert assign_phases(lon)["fit_exclusion"].tolist() == ["", "", "merged-sum"]

@@ -24,7 +24,7 @@ def _curve(law, t, theta):
 
 
 # theta of dV/dt = a V^b - c V is (log V0, k = a V0^(b-1), b, c)
-BL_CASES = [np.array([0.0, 3.0, 2 / 3, 0.3]),            # REFERENCES C5: a = 3, c = 0.3, V0 = 1
+BL_CASES = [np.array([0.0, 3.0, 2 / 3, 0.3]),   # docs/methods.md, check value C5: a 3, c 0.3, V0 1
             np.array([np.log(500.0), 0.02, 0.5, 0.005]),   # growth towards a plateau
             np.array([np.log(2000.0), 0.01, 0.8, 0.03]),   # shrinkage: loss beats growth
             np.array([np.log(50.0), 0.01, 1.3, 0.002])]    # b > 1, before any blow-up
@@ -33,7 +33,7 @@ BL_CASES = [np.array([0.0, 3.0, 2 / 3, 0.3]),            # REFERENCES C5: a = 3,
 @pytest.mark.parametrize("theta", BL_CASES)
 def test_loss_term_law_matches_solve_ivp(theta):
     # Reference: scipy.integrate.solve_ivp of dV/dt = a V^b - c V (rtol 1e-12); the closed form
-    # V^(1-b) = a/c + (V0^(1-b) - a/c) e^{-(1-b) c t} (REFERENCES 1.1, general Bertalanffy)
+    # V^(1-b) = a/c + (V0^(1-b) - a/c) e^{-(1-b) c t} (docs/methods.md §1.1, general Bertalanffy)
     t, v = _ode(BL, theta, 60.0)
     np.testing.assert_allclose(_curve(BL, t, theta), v, rtol=1e-8)
 
@@ -55,7 +55,8 @@ def test_loss_term_special_cases_are_exponential_and_power():
 
 
 def test_loss_term_plateau_check_value_c5():
-    # REFERENCES C5: von Bertalanffy a = 3, c = 0.3, V0 = 1 -> V_inf = (a/c)^3 = 1000
+    # docs/methods.md, check value C5: von Bertalanffy a = 3, c = 0.3, V0 = 1 ->
+    # V_inf = (a/c)^3 = 1000
     fig = BL.derived(BL_CASES[0][None, :])
     assert fig["capacity_mm3"][0] == pytest.approx(1000.0, rel=1e-12)
     assert _curve(BL, [400.0], BL_CASES[0])[0] == pytest.approx(1000.0, rel=1e-6)

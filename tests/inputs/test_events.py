@@ -1,4 +1,5 @@
-"""Events become phase boundaries by the contract's rule: a session on an event's day belongs to
+"""Events become phase boundaries by the rule of docs/outputs.md §5.4: a session on an event's day
+belongs to
 the phase before it (imaging precedes treatment that day), also when the session has a time."""
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ from pipeline.growth.phases import assign_phases
 
 
 def test_session_with_a_time_on_a_date_only_event_day_is_before_it(tmp_path):
-    # Reference: CONTRACT.md, "A session on an event's day belongs to the phase before it".
+    # Reference: docs/outputs.md §5.4, "A session on an event's day belongs to the phase before it".
     origin = parse_when("2024-01-01T15:00:00", "date")
     days = [parse_when(t, "date") - origin for t in
             ("2024-01-01T15:00:00", "2024-02-01T09:00:00", "2024-03-01T10:00:00",

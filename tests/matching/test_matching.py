@@ -53,7 +53,8 @@ def test_continuation_under_growth_and_shrinkage():
     assert link_precision_recall(result.matches, expected) == (1.0, 1.0)
     assert pair_precision_recall(result.assignment, truth) == (1.0, 1.0)
     assert set(result.matches.relation) == {"continues"}
-    # Contract: ids by first appearance, ties by larger volume: B (r 6) > A (r 5) > C (r 3).
+    # docs/outputs.md §4.5: ids by first appearance, ties by larger volume: B (r 6) > A (r 5) > C (r
+    # 3).
     assert [lesion_of(result, "1", comp(truth, "1", n)) for n in "BAC"] == [1, 2, 3]
     assert set(result.longitudinal.status) == {"present"}
     merged = lesions.merge(result.assignment, on=["subject", "session", "component"])
@@ -244,7 +245,8 @@ def test_session_without_lesions():
 
 
 def test_assignment_c21_example():
-    # Reference: REFERENCES.md C21 (scipy documentation example): costs [[4,1,3],[2,0,5],[3,2,2]]
+    # Reference: docs/methods.md, check value C21 (scipy documentation example): costs
+    # [[4,1,3],[2,0,5],[3,2,2]]
     # -> rows (0, 1, 2) to columns (1, 0, 2), total cost 5. Scores are 1 - cost / 10.
     cost = np.array([[4, 1, 3], [2, 0, 5], [3, 2, 2]], float)
     frontier = [(0, 1), (0, 2), (0, 3)]

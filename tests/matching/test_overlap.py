@@ -28,7 +28,7 @@ def _lens(r1: float, r2: float, d: float) -> float:
     """Volume of the intersection of two balls (radii r1, r2, centre distance d)."""
     # Reference: standard sphere-sphere intersection volume (e.g. Weisstein, MathWorld,
     # "Sphere-Sphere Intersection"); for r1 = r2 = r it reduces to pi (4r + d)(2r - d)^2 / 12
-    # as in REFERENCES.md C22.
+    # as in docs/methods.md, check value C22.
     if d >= r1 + r2:
         return 0.0
     if d <= abs(r1 - r2):
@@ -39,7 +39,8 @@ def _lens(r1: float, r2: float, d: float) -> float:
 
 
 def test_lens_formula_matches_c22_closed_form():
-    # Reference: REFERENCES.md C22, lens volume pi (4r + d)(2r - d)^2 / 12 for equal spheres.
+    # Reference: docs/methods.md, check value C22, lens volume pi (4r + d)(2r - d)^2 / 12 for equal
+    # spheres.
     r, d = 10.0, 10.0
     assert _lens(r, r, d) == pytest.approx(np.pi * (4 * r + d) * (2 * r - d) ** 2 / 12)
     assert 2 * _lens(r, r, d) / (2 * 4 / 3 * np.pi * r**3) == pytest.approx(5 / 16)
@@ -47,7 +48,7 @@ def test_lens_formula_matches_c22_closed_form():
 
 @pytest.mark.parametrize("grid", [ISO, FLIPPED], ids=["plain", "flipped-permuted"])
 def test_cubes_shifted_half_give_dice_one_half(grid):
-    # Reference: REFERENCES.md C22, cubes 10^3 shifted by 5 voxels: Dice 0.5 exactly.
+    # Reference: docs/methods.md, check value C22, cubes 10^3 shifted by 5 voxels: Dice 0.5 exactly.
     first = np.zeros(grid.shape, bool)
     first[20:30, 20:30, 20:30] = True
     second = np.zeros(grid.shape, bool)
@@ -69,7 +70,8 @@ def test_equal_spheres_at_distance_r_same_grid():
     # Reference: direct voxel counting with numpy on the shared grid (independent of the
     # world mapping) must agree exactly.
     assert dice == 2 * np.sum(mask_a & mask_b) / (mask_a.sum() + mask_b.sum())
-    # Reference: REFERENCES.md C22, Dice = 5/16 at d = r. Tolerance: C23 bounds voxelised
+    # Reference: docs/methods.md, check value C22, Dice = 5/16 at d = r. Tolerance: docs/methods.md,
+    # check value C23, bounds voxelised
     # sphere volumes within 3% for r >= 10 voxels; Dice is a ratio of voxelised volumes, so
     # we allow twice that relative error (0.02 absolute on 0.3125).
     assert dice == pytest.approx(5 / 16, abs=0.02)
@@ -94,7 +96,8 @@ def test_equal_spheres_across_grids(grid_a, grid_b):
     resampled = sitk.GetArrayFromImage(moved).transpose(2, 1, 0) > 0
     expected = 2 * np.sum(resampled & fine[0]) / (resampled.sum() + fine[0].sum())
     assert dice == pytest.approx(expected, abs=1e-3)
-    # Reference: C22 analytic Dice with a derived tolerance. Nearest-voxel resampling moves the
+    # Reference: docs/methods.md, check value C22, analytic Dice with a derived tolerance.
+    # Nearest-voxel resampling moves the
     # boundary by at most the half-diagonal h of the coarse voxel, so the resampled ball lies
     # between balls of radius r - h and r + h; bounds follow from the lens formula.
     zooms = np.linalg.norm(coarse[1][:3, :3], axis=0)

@@ -19,7 +19,8 @@ DATA = importlib.resources.files("nibabel") / "tests" / "data"
 
 @pytest.mark.parametrize("name", ["anatomical.nii", "standard.nii.gz"])
 def test_lps_helper_agrees_with_nibabel(name):
-    # Reference: nibabel's shipped test data (MIT) read by both libraries; ECOSYSTEM.md 1.3:
+    # Reference: nibabel's shipped test data (MIT) read by both libraries; docs/methods.md §4.1,
+    # §5.4:
     # A_ras = diag(-1, -1, 1, 1) @ A_lps and SimpleITK arrays are (z, y, x).
     path = DATA / name
     if not path.is_file():
@@ -36,7 +37,7 @@ def test_lps_helper_agrees_with_nibabel(name):
 
 def test_matrix_to_ras_of_a_known_euler_transform():
     # Reference: ITK Euler3DTransform maps x -> R (x - c) + c + t in LPS; in RAS the same
-    # motion is LPS @ M_lps @ LPS (common practice, ECOSYSTEM.md 1.3).
+    # motion is LPS @ M_lps @ LPS (common practice, docs/methods.md §4.1, §5.4).
     transform = sitk.Euler3DTransform((1.0, -2.0, 3.0), 0.1, -0.2, 0.3, (4.0, 5.0, -6.0))
     matrix_lps = np.eye(4)
     rot = np.array(transform.GetMatrix()).reshape(3, 3)

@@ -1,7 +1,8 @@
 """`matching.register = true` wires each session's rigid transform into matching and records it.
 
 The registration algorithm itself is checked against a known applied transform in
-tests/test_registration.py; here a stand-in returns a known 4 mm shift so the wiring is tested
+tests/matching/test_registration.py; here a stand-in returns a known 4 mm shift so the wiring is
+tested
 without minutes of optimisation."""
 from __future__ import annotations
 

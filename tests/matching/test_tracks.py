@@ -186,7 +186,7 @@ def test_track_images_hold_lesion_ids():
 @pytest.mark.parametrize("max_id, dtype", [(1, np.uint8), (255, np.uint8), (256, np.int16),
                                            (32767, np.int16), (32768, np.int32)])
 def test_track_image_dtype(max_id, dtype):
-    # Contract + SHARED_TABLES: smallest of uint8, int16, int32 holding the largest id.
+    # docs/outputs.md §4.6: smallest of uint8, int16, int32 holding the largest id.
     comps = np.array([[[1, 2]]], np.int32)
     scan = LabelledScan("01", "2", 1.0, comps, (0, 1, 1), (2, 3, 4), np.eye(4))
     assignment = pd.DataFrame({"subject": "01", "session": ["1", "2", "2"],

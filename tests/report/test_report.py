@@ -388,7 +388,7 @@ def test_report_stays_small(built):
 @pytest.mark.parametrize("beta", [0.5, 2.0 / 3.0, 1.0, 1.3])
 def test_power_curve_solves_the_growth_law(beta):
     # Reference: numerical integration of dV/dt = alpha * V**beta with scipy.integrate.solve_ivp;
-    # k = alpha * V0**(beta - 1) as in REFERENCES.md (power-law parameterisation).
+    # k = alpha * V0**(beta - 1) as in docs/methods.md §1.1 (power-law parameterisation).
     v0, k, t0 = 120.0, 0.01, 10.0
     alpha = k * v0 ** (1.0 - beta)
     days = np.linspace(t0, t0 + 60.0, 7)
@@ -399,10 +399,11 @@ def test_power_curve_solves_the_growth_law(beta):
 
 
 def test_power_curve_worked_example_and_blow_up():
-    # Reference: REFERENCES.md check value C1: a = 2, b = 0.5, V0 = 1 gives V = (1 + t)**2.
+    # Reference: docs/methods.md, check value C1: a = 2, b = 0.5, V0 = 1 gives V = (1 + t)**2.
     np.testing.assert_allclose(power_curve(np.array([1.0, 2.0]), v0_mm3=1.0, k_per_day=2.0,
                                            beta=0.5, day_start=0.0), [4.0, 9.0])
-    # Reference: REFERENCES.md, finite-time blow-up at t* = V0**(1-b) / (a (b - 1)) for b > 1.
+    # Reference: docs/methods.md §1.1, finite-time blow-up at t* = V0**(1-b) / (a (b - 1)) for b >
+    # 1.
     t_star = 1.0 / (1.0 * (2.0 - 1.0))
     after = power_curve(np.array([t_star + 0.5]), v0_mm3=1.0, k_per_day=1.0, beta=2.0,
                         day_start=0.0)

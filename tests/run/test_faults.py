@@ -120,7 +120,8 @@ def cohort(tmp_path_factory):
     done = subprocess.run(command("reference"), cwd=folder, env=environment(),
                           capture_output=True, text=True, timeout=120)
     elapsed = time.perf_counter() - start
-    assert done.returncode == 1, done.stderr       # one broken scan: exit status 1 (contract)
+    assert done.returncode == 1, done.stderr       # one broken scan: exit status 1
+                                                   # (docs/outputs.md §1)
     assert (folder / "reference" / "longitudinal.tsv").exists()
     return folder, folder / "reference", elapsed, done.returncode
 
@@ -254,7 +255,8 @@ def test_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, monke
 
 # ---------------------------------------------------------------------------------- the lock
 def test_second_run_on_same_out_is_refused(tmp_path, capsys):
-    # Reference: contract, exit status 2 = usage error, nothing computed; issue 7: "two runs on
+    # Reference: docs/outputs.md §1, exit status 2 = usage error, nothing computed; issue 7: "two
+    # runs on
     # the same OUT at once are refused by a lock with a clear message".
     mask = np.zeros((10, 10, 6), np.uint8)
     mask[2:5, 2:5, 2:4] = 1

@@ -4,7 +4,7 @@ Classes checked: the input looked up again from another folder, or changed after
 (manifest, mask); a run killed at several moments while it replaces the tables of an earlier,
 larger run; a stage rerun making the stages after it out of date; the report written after what
 it reads; the report under OUT's lock; and the run's summary counts. The reference of every
-check is the contract itself (exit status 2 = usage error, nothing computed; one line naming the
+check is docs/outputs.md itself (exit status 2 = usage error, nothing computed; one line naming the
 file and the reason) and the tables of one uninterrupted run. Masks are invented spheres.
 """
 from __future__ import annotations

@@ -119,7 +119,8 @@ def test_reoriented_storage_gives_same_volumes_and_world_centroids(data, affine,
        new=st.lists(st.integers(1, 30000), min_size=4, max_size=4, unique=True),
        pick=st.sets(st.integers(1, 4), min_size=1, max_size=4))
 def test_relabelling_changes_nothing(data, affine, new, pick):
-    # Reference: contract, "Selected label values are merged before labelling": the lesion is the
+    # Reference: docs/outputs.md §5.1, "Selected label values are merged before labelling": the
+    # lesion is the
     # set of selected voxels, whatever numbers name them. Relabelling 1..4 -> `new` (injective)
     # and selecting the images of the same values must give identical rows but `label`.
     assume(np.isin(data, list(pick)).any())
@@ -147,7 +148,8 @@ def test_relabelling_changes_nothing(data, affine, new, pick):
 @given(data=label_masks(shape=None), affine=affines(), axis=st.integers(0, 2),
        where=st.floats(0.2, 0.8))
 def test_split_into_two_files_gives_union_of_rows(data, affine, axis, where):
-    # Reference: 26-connectivity (a voxel touches the 26 around it, CONTRACT.md): two parts more
+    # Reference: 26-connectivity (a voxel touches the 26 around it, docs/outputs.md §5.1): two parts
+    # more
     # than one voxel apart along `axis` never join, so each file's rows are rows of the whole.
     # nibabel writes the three files.
     assume(data.shape[axis] >= 5)

@@ -80,7 +80,8 @@ def test_flipped_and_permuted_storage_gives_same_lesions(tmp_path, codes):
 @pytest.mark.parametrize("abc", [(6, 6, 6), (12, 8, 5), (20, 15, 10)])
 def test_voxelised_ellipsoid_volume_is_analytic(abc):
     # Reference: skimage.draw.ellipsoid and the analytic volume 4/3*pi*a*b*c.
-    # Tolerance: REFERENCES.md C23 gives worst-case voxelisation error 8 % for radius >= 5 voxels,
+    # Tolerance: docs/methods.md, check value C23 gives worst-case voxelisation error 8 % for radius
+    # >= 5 voxels,
     # 3 % for >= 10 voxels; we use the bound for the smallest semi-axis.
     a, b, c = abc
     zooms = (0.5, 0.7, 1.0)
@@ -99,7 +100,7 @@ def test_voxelised_ellipsoid_volume_is_analytic(abc):
 @pytest.mark.parametrize("unit,zoom,expected", [("meter", 0.0005, 0.25e0 * 1.0),
                                                  ("micron", 500.0, 0.25), ("mm", 0.5, 0.25)])
 def test_spatial_units_convert_to_mm(tmp_path, unit, zoom, expected):
-    # Reference: NIfTI-1 standard xyzt_units codes (REFERENCES.md C20): pixdim
+    # Reference: NIfTI-1 standard xyzt_units codes (docs/methods.md, check value C20): pixdim
     # (0.0005, 0.0005, 0.001) m or (500, 500, 1000) micron -> 0.25 mm^3 per voxel.
     affine = np.diag([zoom, zoom, 2 * zoom, 1.0])
     data = np.zeros((4, 4, 4), np.uint8)
@@ -259,7 +260,8 @@ def test_max_axial_diameter_matches_brute_force_on_oblique_grid():
 @pytest.mark.parametrize("offset,expected", [((1, 1, 1), {6: 2, 18: 2, 26: 1}),
                                              ((1, 1, 0), {6: 2, 18: 1, 26: 1})])
 def test_connectivity(offset, expected):
-    # Reference: REFERENCES.md C25 (corner- and edge-touching voxel pairs), scipy.ndimage.label.
+    # Reference: docs/methods.md, check value C25 (corner- and edge-touching voxel pairs),
+    # scipy.ndimage.label.
     data = np.zeros((4, 4, 4), np.uint8)
     data[1, 1, 1] = 1
     data[1 + offset[0], 1 + offset[1], 1 + offset[2]] = 1
