@@ -32,12 +32,20 @@ def _simulate(rng, m, n, beta, sigma, fold=10.0, span=300.0):
     return t, y
 
 
-def test_quantiles_c17():
-    # Reference: docs/methods.md, check value C17, recomputed with scipy.stats.
-    assert stats.chi2.ppf(0.95, 1) == pytest.approx(3.841459, abs=1e-6)
-    assert stats.chi2.ppf(0.95, 2) == pytest.approx(5.991465, abs=1e-6)
-    for df, value in [(1, 161.448), (2, 18.513), (3, 10.128), (4, 7.709)]:
-        assert stats.f.ppf(0.95, 1, df) == pytest.approx(value, abs=1e-3)
+def test_profile_thresholds_are_the_c17_quantiles():
+    # Reference: docs/methods.md, check value C17 (F and chi-square quantiles, recomputed there
+    # with scipy.stats). The group fit's profile interval compares the RSS excess with
+    # F(0.95; 1, dof) when sigma is estimated and with chi2(0.95; 1) when it is known.
+    from pipeline.growth.group_fits import _Options, _reference
+
+    estimated = _Options((-1.0, 3.0), 0.95, 0.0, 2.0)
+    for dof, value in [(1, 161.448), (2, 18.513), (3, 10.128), (4, 7.709)]:
+        scale, threshold, method = _reference(2.0 * dof, dof, estimated)
+        assert (scale, method) == (2.0, "F") and threshold == pytest.approx(value, abs=1e-3)
+    known = _Options((-1.0, 3.0), 0.95, 0.1, 2.0)
+    scale, threshold, method = _reference(5.0, 3, known)
+    assert method == "chi2" and scale == pytest.approx(0.01)
+    assert threshold == pytest.approx(3.841459, abs=1e-6)
 
 
 def test_aicc_c18():

@@ -38,14 +38,6 @@ def _lens(r1: float, r2: float, d: float) -> float:
             / (12 * d))
 
 
-def test_lens_formula_matches_c22_closed_form():
-    # Reference: docs/methods.md, check value C22, lens volume pi (4r + d)(2r - d)^2 / 12 for equal
-    # spheres.
-    r, d = 10.0, 10.0
-    assert _lens(r, r, d) == pytest.approx(np.pi * (4 * r + d) * (2 * r - d) ** 2 / 12)
-    assert 2 * _lens(r, r, d) / (2 * 4 / 3 * np.pi * r**3) == pytest.approx(5 / 16)
-
-
 @pytest.mark.parametrize("grid", [ISO, FLIPPED], ids=["plain", "flipped-permuted"])
 def test_cubes_shifted_half_give_dice_one_half(grid):
     # Reference: docs/methods.md, check value C22, cubes 10^3 shifted by 5 voxels: Dice 0.5 exactly.
