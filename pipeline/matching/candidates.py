@@ -54,7 +54,7 @@ def reach_mm(geometry: ScanGeometry, component: int, settings: MatchSettings) ->
     --------
     >>> import pandas as pd
     >>> from pipeline.matching.overlap import scan_geometry
-    >>> from pipeline.volumes import LabelledScan
+    >>> from pipeline.volumes.components import LabelledScan
     >>> cube = np.ones((2, 2, 2), np.int32)
     >>> rows = pd.DataFrame({"component": [1], "volume_mm3": [8.0], "centroid_x_mm": [1.5],
     ...                      "centroid_y_mm": [1.5], "centroid_z_mm": [1.5]})
