@@ -20,27 +20,8 @@ import pandas as pd
 
 from pipeline.settings import FitSettings
 
-__all__ = ["fit_whole_phases", "add_windows", "WINDOW_COLUMNS"]
+__all__ = ["fit_whole_phases", "add_windows"]
 
-WINDOW_COLUMNS: dict[str, dict] = {
-    "window": {"Description": "Sessions the law was fitted to", "Units": "n/a", "Levels": {
-        "phase": "every usable session of the phase",
-        "from-nadir": "a post-event phase from its nadir on (regrowth; from_nadir)",
-        "whole-phase": "a post-event phase from its first session, response included "
-                       "(response_models; not ranked against the regrowth rows)"}},
-    "decay_per_day": {"Description": "Regression-regrowth decay rate d", "Units": "1/day"},
-    "regrowth_per_day": {"Description": "Regression-regrowth regrowth rate g", "Units": "1/day"},
-    "nadir_day": {"Description": "Day of the fitted curve's minimum (day_start + "
-                  "ln(d/g)/(d+g) when d > g; day_start when d <= g; n/a when g = 0 < d)",
-                  "Units": "day"},
-    "nadir_mm3": {"Description": "Fitted volume at nadir_day", "Units": "mm^3"},
-    "depth_of_response": {"Description": "nadir_mm3 / v0_mm3 (fitted volume at the phase's "
-                          "first session)", "Units": "n/a"},
-    "loss_per_day": {"Description": "Loss rate c of dV/dt = a V^b - c V", "Units": "1/day"},
-    "first_absent_day": {"Description": "Whole-phase rows: first day of the phase the lesion was "
-                         "not seen (absent or below detection; entered left-censored)",
-                         "Units": "day"},
-}
 _UNSEEN = ("absent", "below-detection")
 
 

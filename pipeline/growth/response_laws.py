@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.growth.laws import LAWS, Law, expm1_ratio, log1p_ratio
+from pipeline.growth.law_base import Law, expm1_ratio, log1p_ratio
 from pipeline.settings import FitSettings
 
 Array = np.ndarray
@@ -182,4 +182,3 @@ RESPONSE_LAWS: dict[str, Law] = {
         "von Bertalanffy with a loss term (general Bertalanffy); Ghaffari Laleh et al. 2022",
         custom_bounds=_bl_bounds, custom_starts=_bl_starts, derived=_bl_derived),
 }
-LAWS.update(RESPONSE_LAWS)

@@ -30,12 +30,11 @@ def write_table(table: pd.DataFrame, path: str | os.PathLike, *,
                 columns: Iterable[str] | None = None) -> None:
     """Write ``table`` as a BIDS-style TSV, atomically.
 
-    ``columns`` fixes the order of the first columns (the key columns of docs/outputs.md); any other
-    columns follow
-    in their current order. Missing values are written ``n/a``; booleans as ``true``/``false``.
-    A number that is not finite (``inf``, ``-inf``, ``nan``) is written ``n/a`` too, in every
-    column, so no table ever holds ``inf`` or ``nan`` as text (the producing stage says why in
-    its ``note``).
+    ``columns`` fixes the order of the first columns (the key columns of docs/outputs.md); any
+    other columns follow in their current order. Missing values are written ``n/a``; booleans
+    as ``true``/``false``. A number that is not finite (``inf``, ``-inf``, ``nan``) is written
+    ``n/a`` too, in every column, so no table ever holds ``inf`` or ``nan`` as text (the
+    producing stage says why in its ``note``).
 
     Examples
     --------

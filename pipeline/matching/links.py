@@ -107,6 +107,8 @@ LONGITUDINAL_COLUMNS: dict[str, dict] = {
     "corrected": {"Description": "A component of this row was assigned by a QA correction",
                   "Levels": _BOOL},
     "review": {"Description": "A link into this row is flagged for review", "Levels": _BOOL},
+    "group": {"Description": "Group of the subject from the manifest ('' = none; fitted as "
+              "'all')"},
 }
 ASSIGNMENT_COLUMNS: dict[str, dict] = {
     "subject": {"Description": "Subject label"},

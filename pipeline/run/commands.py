@@ -446,7 +446,8 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
                   model: str, positive: str | None) -> int:
     """``lesion-growth evaluate``: evaluation.tsv (+ evaluation_thresholds.tsv)."""
     from pipeline.growth import evaluate
-    from pipeline.io.tsv import read_table, write_sidecar, write_table
+    from pipeline.io.tsv import read_table
+    from pipeline.run.catalog import write_output
 
     if not (out / "fits.tsv").exists():
         raise UsageError(f"{out}: no fits.tsv; run 'lesion-growth fit' or 'run' first")
@@ -469,12 +470,8 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
         except ValueError as exc:
             raise UsageError(f"{outcomes}: {exc}") from None
         run = run_state.begin(out, "evaluate", ("evaluate",))
-        write_table(result, out / "evaluation.tsv")
-        write_table(thresholds, out / "evaluation_thresholds.tsv")
-        write_sidecar(out / "evaluation_thresholds.tsv", evaluate.THRESHOLD_COLUMNS)
-        doc = getattr(evaluate, "COLUMNS", None)
-        if isinstance(doc, dict):
-            write_sidecar(out / "evaluation.tsv", doc)
+        write_output(out, "evaluation.tsv", result)
+        write_output(out, "evaluation_thresholds.tsv", thresholds)
         if problems or (out / "errors.tsv").exists():
             write_errors(_keep_errors(out, ("evaluate",)) + problems, out)
         run_state.stage_done(out, run, "evaluate")

@@ -1,5 +1,6 @@
-"""BIDS JSON data dictionaries of the tables written by the workflow itself (one entry per
-column, with units); each stage module keeps the dictionary of its own table."""
+"""Column dictionaries (BIDS JSON sidecar form: one entry per column, with units) of the tables
+the run layer itself writes: masks.tsv, errors.tsv, events.tsv. Each stage keeps the dictionary
+of its own tables; :mod:`pipeline.run.catalog` lists them all."""
 from __future__ import annotations
 
 _ID = {
@@ -8,43 +9,8 @@ _ID = {
     "day": {"Description": "Time since the subject's first session", "Units": "day"},
 }
 
-LESION_SIDECAR = {
-    **_ID,
-    "component": {"Description": "Connected component number within this scan, 1 = largest"},
-    "label": {"Description": "Most frequent selected label value inside the component"},
-    "voxels": {"Description": "Number of voxels in the component"},
-    "volume_mm3": {"Description": "Voxel count x |det| of the affine's 3x3 part",
-                   "Units": "mm^3"},
-    "centroid_x_mm": {"Description": "Centroid, RAS+ world x (towards the subject's right)",
-                      "Units": "mm"},
-    "centroid_y_mm": {"Description": "Centroid, RAS+ world y (anterior)", "Units": "mm"},
-    "centroid_z_mm": {"Description": "Centroid, RAS+ world z (superior)", "Units": "mm"},
-    "max_axial_diameter_mm": {
-        "Description": "Largest distance between voxel centres of the lesion within one axial "
-                       "slice (slices along the voxel axis closest to world superior-inferior), "
-                       "maximum over slices", "Units": "mm"},
-    "equivalent_diameter_mm": {"Description": "Diameter of the sphere of equal volume",
-                               "Units": "mm"},
-    **{f"bbox_{a}_{m}": {"Description": f"Voxel bounding box, {m}imum index along axis {a} "
-                         "(inclusive, 0-based)"} for a in "ijk" for m in ("min", "max")},
-    "axial_slices": {"Description": "Number of axial slices the lesion spans"},
-    "touches_border": {"Description": "The lesion touches the edge of the image grid",
-                       "Levels": {"true": "touches", "false": "does not touch"}},
-    "measurable": {"Description": "RANO-BM measurable: longest diameter >= 10 mm and visible on "
-                                  ">= 2 axial slices (Lin NU et al. Lancet Oncol 2015), the "
-                                  "diameter taken edge to edge (max_axial_diameter_edge_mm), "
-                                  "as a reader measures it on screen",
-                   "Levels": {"true": "measurable", "false": "not measurable"}},
-    "max_axial_diameter_edge_mm": {
-        "Description": "max_axial_diameter_mm measured edge to edge: the centre-to-centre "
-                       "distance plus one voxel's in-slice extent along the measured line "
-                       "(common practice); a lesion 10 voxels wide at 1 mm reads 10 mm here and "
-                       "9 mm centre to centre", "Units": "mm"},
-    "mask": {"Description": "Mask path as given in the input"},
-    "group": {"Description": "Group from the manifest ('' = none; fitted as 'all')"},
-}
 
-MASK_SIDECAR = {
+MASK_COLUMNS = {
     **_ID,
     "mask": {"Description": "Mask path as given in the input"},
     "image": {"Description": "Image path as given in the input (may be empty)"},
@@ -60,12 +26,13 @@ MASK_SIDECAR = {
                     "the output folder (named from the labels' ASCII letters and digits)"},
 }
 
-ERROR_SIDECAR = {
+ERROR_COLUMNS = {
     "subject": _ID["subject"], "session": _ID["session"],
     "path": {"Description": "Input file path as given"},
     "stage": {"Description": "Where the input failed",
               "Levels": {"input": "input table row", "volumes": "reading or measuring the mask",
-                         "match": "matching", "fit": "fitting"}},
+                         "image": "the MRI image under the mask", "match": "matching",
+                         "events": "the events table", "evaluate": "marker evaluation"}},
     "reason": {"Description": "One-line reason a person can act on"},
 }
 
@@ -79,6 +46,8 @@ EVENT_COLUMNS = {
     "lesion": {"Description": "Lesion id the event concerns; n/a = every lesion of the subject"},
 }
 
+
+#: registration.tsv, one row per registered session (with ``matching.register``).
 REGISTRATION_COLUMNS = {
     "subject": {"Description": "Subject label"},
     "session": {"Description": "Session registered onto the subject's first session"},

@@ -16,13 +16,11 @@ from pipeline.run.executors import run_tasks, start_pool_server, volumes_task
 from pipeline.config import Config
 from pipeline.inputs.manifest import Scan, read_inputs
 from pipeline.io.names import track_path
-from pipeline.io.tsv import write_sidecar, write_table
+from pipeline.run.catalog import write_output
+from pipeline.run.sidecars import ERROR_COLUMNS, MASK_COLUMNS
 from pipeline.volumes.components import LESION_COLUMNS, LabelledScan
 from pipeline.geometry import voxel_volume_mm3
 
-ERROR_COLUMNS = ("subject", "session", "path", "stage", "reason")
-MASK_COLUMNS = ("subject", "session", "day", "mask", "image", "group", "components", "volume_mm3",
-                "voxel_volume_mm3", "shape_x", "shape_y", "shape_z", "sha256", "track_image")
 
 
 def say(message: str) -> None:
@@ -167,21 +165,16 @@ def _stage1_tables(stage: Stage1) -> tuple[pd.DataFrame, pd.DataFrame]:
 
 
 def write_stage1(stage: Stage1, out: Path) -> None:
-    from pipeline.run.sidecars import ERROR_SIDECAR, LESION_SIDECAR, MASK_SIDECAR
-
     out.mkdir(parents=True, exist_ok=True)
-    write_table(stage.lesions, out / "lesions.tsv", columns=LESION_COLUMNS)
-    write_sidecar(out / "lesions.tsv", LESION_SIDECAR)
-    write_table(stage.masks, out / "masks.tsv", columns=MASK_COLUMNS)
-    write_sidecar(out / "masks.tsv", MASK_SIDECAR)
+    write_output(out, "lesions.tsv", stage.lesions)
+    write_output(out, "masks.tsv", stage.masks)
     write_errors(stage.errors, out)
-    write_sidecar(out / "errors.tsv", ERROR_SIDECAR)
 
 
 def write_errors(errors: list[dict], out: Path) -> None:
     table = pd.DataFrame(errors, columns=list(ERROR_COLUMNS))
     table = table.sort_values(["subject", "session", "stage"], kind="stable")
-    write_table(table, out / "errors.tsv", columns=ERROR_COLUMNS)
+    write_output(out, "errors.tsv", table)
 
 
 def read_errors(out: Path) -> list[dict]:

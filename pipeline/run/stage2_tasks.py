@@ -13,6 +13,8 @@ from pathlib import Path
 
 import pandas as pd
 
+import numpy as np
+
 from pipeline.errors import InputError
 from pipeline.settings import MatchSettings
 from pipeline.volumes.components import LabelledScan
@@ -66,7 +68,6 @@ def match_task(subject: str, session: str, where: str, job: SubjectJob) -> Subje
     (['continues'], [])
     """
     from pipeline.matching import links as matching
-    from pipeline.run.stages import register_subject
 
     outcome = SubjectOutcome(subject, None)
     settings = job.settings
@@ -104,3 +105,39 @@ def _write_tracks(job: SubjectJob, assignment: pd.DataFrame) -> None:
         # not fsynced: a track image is remade by `match`; the tables stay durable
         save_label_image(path, image, file_affine, units_code=units_code, forms=forms,
                          form_codes=form_codes, durable=False)
+
+
+def register_subject(images: dict[str, Path | None], subject: str, scans: list[LabelledScan],
+                     settings: MatchSettings, rows: list[dict], notes: list[str]
+                     ) -> dict[str, np.ndarray]:
+    """Rigid transforms of each session's image onto the subject's first session's image."""
+    import nibabel as nib
+
+    from pipeline.matching.registration import rigid_register
+
+    first = scans[0]
+    if images.get(first.session) is None:
+        raise ValueError("matching.register needs an image for every session (manifest 'image')")
+    fixed = nib.load(str(images[first.session]))
+    transforms = {}
+    for scan in scans[1:]:
+        path = images.get(scan.session)
+        if path is None:
+            raise ValueError(f"matching.register: session {scan.session} has no image")
+        moving = nib.load(str(path))
+        result = rigid_register(np.asanyarray(fixed.dataobj, dtype=np.float32), fixed.affine,
+                                np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine,
+                                iterations=settings.registration_iterations,
+                                bins=settings.registration_bins,
+                                sampling=settings.registration_sampling)
+        rows.append({"subject": subject, "session": scan.session,
+                     "reference_session": first.session, "quality": result.quality,
+                     "quality_before": result.quality_before,
+                     "metric_value": result.metric_value,
+                     "matrix_ras": " ".join(f"{v:.6g}" for v in result.matrix_ras.ravel())})
+        notes.append(f"note: sub {subject} ses {scan.session}: rigid registration quality "
+                     f"{result.quality:.3f} (before {result.quality_before:.3f})")
+        transforms[scan.session] = result.matrix_ras
+    return transforms
+
+

@@ -10,9 +10,9 @@ import pandas as pd
 from pipeline.config import Config
 from pipeline.errors import UsageError
 from pipeline.run.stage1 import Stage1, say
-from pipeline.io.tsv import read_table, write_sidecar, write_table
+from pipeline.io.tsv import read_table
+from pipeline.run.catalog import empty, write_output
 from pipeline.io.names import track_path
-from pipeline.settings import MatchSettings
 from pipeline.run.sidecars import EVENT_COLUMNS, REGISTRATION_COLUMNS
 from pipeline.volumes.components import LabelledScan
 
@@ -64,9 +64,8 @@ def run_matching(stage: Stage1, out: Path, *, config: Config,
         say(f"error: sub {row['subject']}: {row['reason']}")
     _write_stage2(out, parts)
     if config.matching.register:
-        write_table(pd.DataFrame(registrations, columns=list(REGISTRATION_COLUMNS)),
-                    out / "registration.tsv", columns=tuple(REGISTRATION_COLUMNS))
-        write_sidecar(out / "registration.tsv", REGISTRATION_COLUMNS)
+        write_output(out, "registration.tsv",
+                     pd.DataFrame(registrations, columns=list(REGISTRATION_COLUMNS)))
     return errors
 
 
@@ -116,66 +115,12 @@ def _track_write(stage: Stage1, out: Path, scan: LabelledScan) -> tuple:
 
 
 def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
-    from pipeline.matching import links as matching
-
-    for name in ("matches", "longitudinal"):
-        frames = [f for f in parts[name] if len(f)]
-        table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
-            columns=_contract_columns(name))
-        write_table(table, out / f"{name}.tsv", columns=_contract_columns(name))
-        write_sidecar(out / f"{name}.tsv", matching.COLUMNS[f"{name}.tsv"])
-    frames = [f for f in parts["assignment"] if len(f)]      # component -> lesion, for response
-    table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(
-        columns=list(matching.ASSIGNMENT_COLUMNS))
-    write_table(table, out / "lesion_components.tsv", columns=tuple(matching.ASSIGNMENT_COLUMNS))
-    write_sidecar(out / "lesion_components.tsv", matching.ASSIGNMENT_COLUMNS)
+    for name, part in (("matches.tsv", "matches"), ("longitudinal.tsv", "longitudinal"),
+                       ("lesion_components.tsv", "assignment")):   # component -> lesion
+        frames = [f for f in parts[part] if len(f)]
+        write_output(out, name, pd.concat(frames, ignore_index=True) if frames else empty(name))
 
 
-def register_subject(images: dict[str, Path | None], subject: str, scans: list[LabelledScan],
-                     settings: MatchSettings, rows: list[dict], notes: list[str]
-                     ) -> dict[str, np.ndarray]:
-    """Rigid transforms of each session's image onto the subject's first session's image."""
-    import nibabel as nib
-
-    from pipeline.matching.registration import rigid_register
-
-    first = scans[0]
-    if images.get(first.session) is None:
-        raise ValueError("matching.register needs an image for every session (manifest 'image')")
-    fixed = nib.load(str(images[first.session]))
-    transforms = {}
-    for scan in scans[1:]:
-        path = images.get(scan.session)
-        if path is None:
-            raise ValueError(f"matching.register: session {scan.session} has no image")
-        moving = nib.load(str(path))
-        result = rigid_register(np.asanyarray(fixed.dataobj, dtype=np.float32), fixed.affine,
-                                np.asanyarray(moving.dataobj, dtype=np.float32), moving.affine,
-                                iterations=settings.registration_iterations,
-                                bins=settings.registration_bins,
-                                sampling=settings.registration_sampling)
-        rows.append({"subject": subject, "session": scan.session,
-                     "reference_session": first.session, "quality": result.quality,
-                     "quality_before": result.quality_before,
-                     "metric_value": result.metric_value,
-                     "matrix_ras": " ".join(f"{v:.6g}" for v in result.matrix_ras.ravel())})
-        notes.append(f"note: sub {subject} ses {scan.session}: rigid registration quality "
-                     f"{result.quality:.3f} (before {result.quality_before:.3f})")
-        transforms[scan.session] = result.matrix_ras
-    return transforms
-
-
-def _contract_columns(name: str) -> tuple[str, ...]:
-    return {
-        "matches": ("subject", "session_from", "component_from", "session_to", "component_to",
-                    "relation", "overlap", "centroid_distance_mm"),
-        "longitudinal": ("subject", "lesion", "session", "day", "volume_mm3", "status",
-                         "components"),
-        "fits": ("subject", "lesion", "phase", "model", "n_points", "day_start", "day_end",
-                 "v0_mm3", "alpha", "beta", "beta_ci_low", "beta_ci_high", "aicc", "note"),
-        "group_fits": ("group", "phase", "model", "n_lesions", "n_points", "beta",
-                       "beta_ci_low", "beta_ci_high"),
-    }[name]
 
 
 def events_table(path: Path) -> tuple[pd.DataFrame, str]:
@@ -261,26 +206,16 @@ def _event_row(row: pd.Series, kind: str, manifest_kind: str, origins: dict[str,
 
 def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
     """Stage 3 on longitudinal.tsv: fits.tsv and group_fits.tsv."""
-    from pipeline.growth import group_fits as groupfit
-    from pipeline.growth import lesion_fits as growth
     from pipeline.api import fit_growth
-    from pipeline.growth.fit_table import UNFITTED_COLUMNS
 
     fits, group_fits, unfitted = fit_growth(read_table(out / "longitudinal.tsv"), events,
                                             config=config)
-    write_table(fits, out / "fits.tsv", columns=_contract_columns("fits"))
-    write_table(unfitted, out / "unfitted.tsv", columns=tuple(unfitted.columns))
-    write_sidecar(out / "unfitted.tsv", UNFITTED_COLUMNS)
-    write_table(group_fits, out / "group_fits.tsv", columns=_contract_columns("group_fits"))
-    for name, module in (("fits", growth), ("group_fits", groupfit)):
-        doc = getattr(module, "COLUMNS", None)
-        if isinstance(doc, dict):
-            write_sidecar(out / f"{name}.tsv", doc)
+    write_output(out, "fits.tsv", fits)
+    write_output(out, "unfitted.tsv", unfitted)
+    write_output(out, "group_fits.tsv", group_fits)
     if events is not None:
         shown = events.assign(day=events["day_given"], lesion=events["lesion"].astype("Int64"))
-        write_table(shown[["subject", "day", "event", "lesion"]], out / "events.tsv",
-                    columns=("subject", "day", "event", "lesion"))
-        write_sidecar(out / "events.tsv", EVENT_COLUMNS)
+        write_output(out, "events.tsv", shown[list(EVENT_COLUMNS)])
     if config.response.write:
         _write_response(out, config=config, events=events)
 
@@ -297,11 +232,8 @@ def _write_response(out: Path, *, config: Config, events: pd.DataFrame | None) -
         read_table(out / "longitudinal.tsv"), read_table(out / "lesions.tsv"),
         read_table(out / "lesion_components.tsv"))
     table = response.assess_response(measures, events, settings=config.response)
-    for name, rows, doc in (("response", table, response.COLUMNS),
-                            ("response_subjects", response.summarize_response(table),
-                             response.SUMMARY_COLUMNS)):
-        write_table(rows, out / f"{name}.tsv", columns=tuple(doc))
-        write_sidecar(out / f"{name}.tsv", doc)
+    write_output(out, "response.tsv", table)
+    write_output(out, "response_subjects.tsv", response.summarize_response(table))
 
 
 def load_provenance(out: Path) -> dict:

@@ -6,6 +6,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from pipeline.volumes.columns import LESION_COLUMNS, MEASURE_COLUMNS  # noqa: F401
 from pipeline.voxels import _absent_labels, _label_values
 from pipeline.volumes.diameters import _axial_diameters, _row_axes, axial_axis
 from pipeline.geometry import voxel_volume_mm3
@@ -47,14 +48,6 @@ class LabelledScan:
         return full
 
 
-#: Columns of lesions.tsv written by this stage, in order (key columns of docs/outputs.md first).
-LESION_COLUMNS = ("subject", "session", "day", "component", "label", "voxels", "volume_mm3",
-                  "centroid_x_mm", "centroid_y_mm", "centroid_z_mm", "max_axial_diameter_mm",
-                  "equivalent_diameter_mm", "bbox_i_min", "bbox_i_max", "bbox_j_min",
-                  "bbox_j_max", "bbox_k_min", "bbox_k_max", "axial_slices", "touches_border",
-                  "measurable", "max_axial_diameter_edge_mm", "mask", "group")
-
-MEASURE_COLUMNS = LESION_COLUMNS[3:22]
 
 
 def structure(connectivity: int) -> np.ndarray:
