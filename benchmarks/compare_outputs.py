@@ -1,10 +1,12 @@
 """Compare the stage-2 outputs of two output folders (e.g. two versions of the tool, same input).
 
-Run: python benchmarks/compare_outputs.py OLD_OUT NEW_OUT
+Run: python benchmarks/compare_outputs.py OLD_OUT NEW_OUT [--all]
 
-matches.tsv and longitudinal.tsv must be byte-identical; every track image in tracks/ must exist
-in both and read (nibabel) with the same header block, dtype, shape, affine and voxel values (the
-compressed bytes may differ: the gzip level is not part of the result). Prints each difference
+matches.tsv and longitudinal.tsv (with ``--all``: every table and JSON file in OUT except
+provenance.json, the run state and the report page, which differ by design) must be
+byte-identical; every track image in tracks/ must exist in both and read (nibabel) with the same
+header block, dtype, shape, affine and voxel values (the compressed bytes may differ: the gzip
+level is not part of the result). Prints each difference
 and exits 1 when there is one, 0 otherwise.
 """
 from __future__ import annotations
@@ -19,10 +21,20 @@ import numpy as np
 TABLES = ("matches.tsv", "longitudinal.tsv")
 
 
-def compare(old: Path, new: Path) -> list[str]:
-    """Differences between the stage-2 outputs of ``old`` and ``new`` (empty: identical)."""
+#: Files of OUT that differ between runs by design: times, run ids, the report's own page.
+BY_DESIGN = ("provenance.json", ".run-state.json", "report.html")
+
+
+def compare(old: Path, new: Path, *, everything: bool = False) -> list[str]:
+    """Differences between the outputs of ``old`` and ``new`` (empty: identical): the stage-2
+    tables and track images, or with ``everything`` every .tsv and .json file in OUT too."""
     found = []
-    for name in TABLES:
+    names = TABLES
+    if everything:
+        files = {p.name for folder in (old, new) for p in folder.iterdir()
+                 if p.suffix in (".tsv", ".json") and p.name not in BY_DESIGN}
+        names = tuple(sorted(files))
+    for name in names:
         a, b = old / name, new / name
         if not a.is_file() or not b.is_file():
             found.append(f"{name}: missing in {'old' if not a.is_file() else 'new'}")
@@ -61,13 +73,15 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("old", type=Path)
     parser.add_argument("new", type=Path)
+    parser.add_argument("--all", action="store_true", help="compare every table and JSON file")
     args = parser.parse_args(argv)
-    found = compare(args.old, args.new)
+    found = compare(args.old, args.new, everything=args.all)
     images = len(list((args.new / "tracks").glob("*.nii.gz")))
     for line in found:
         print(line)
     print(f"{'identical' if not found else f'{len(found)} difference(s)'}: "
-          f"{', '.join(TABLES)} and {images} track images")
+          f"{'every table and JSON file' if args.all else ', '.join(TABLES)} and {images} track "
+          "images")
     return 1 if found else 0
 
 

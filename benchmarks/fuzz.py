@@ -34,7 +34,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     parser.add_argument("--only", choices=sorted(TARGETS), help="one target only")
     parser.add_argument("--seed", type=int, default=None, help="hypothesis seed (default random)")
     parser.add_argument("--strict", action="store_true",
-                        help="do not set aside the known defects listed in tests/commands/test_fuzz.py")
+                        help="do not set aside the known defects listed in "
+                        "tests/commands/test_fuzz.py")
     return parser.parse_args(argv)
 
 

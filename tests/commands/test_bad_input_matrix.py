@@ -12,14 +12,13 @@ file. Cases that once showed a defect (named D1-D20 below) stay as regression te
 """
 from __future__ import annotations
 
-import contextlib
 import gzip
-import io
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
 import pytest
+from cli_helpers import HEADER, call, errors_of, write_manifest
 from nifti_helpers import save_mask
 
 from pipeline.cli import main
@@ -28,7 +27,6 @@ from pipeline.io.tsv import read_table
 GOOD = np.zeros((12, 12, 8), np.uint8)
 GOOD[3:6, 3:6, 2:4] = 1          # 3 x 3 x 2 = 18 voxels, centre of the box at voxel (4, 4, 2.5)
 GOOD_ROWS = [("G", "1", "good.nii.gz", "2024-01-01"), ("G", "2", "good.nii.gz", "2024-02-01")]
-HEADER = ("subject", "session", "mask", "date")
 
 
 # ----------------------------------------------------------------------------------- helpers
@@ -47,24 +45,6 @@ def nifti_bytes(data: np.ndarray, *, affine=None, edit=None, dtype=None) -> byte
         edit(header)
     body = np.asarray(data, dtype=header.get_data_dtype()).tobytes(order="F")
     return header.binaryblock + bytes(4) + body
-
-
-def write_manifest(folder: Path, rows, header=HEADER, name="manifest.tsv") -> Path:
-    path = folder / name
-    path.write_text("\n".join("\t".join(r) for r in [header, *rows]) + "\n")
-    return path
-
-
-def call(args) -> tuple[int, str]:
-    """Run the command line in this process; return (exit status, stderr)."""
-    err = io.StringIO()
-    with contextlib.redirect_stderr(err):
-        code = main([str(a) for a in args])
-    return code, err.getvalue()
-
-
-def errors_of(out: Path):
-    return read_table(out / "errors.tsv")
 
 
 def assert_good_subject_intact(out: Path) -> None:

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from cohort import ball
 from nifti_helpers import save_mask
-from test_bad_input_matrix import call, write_manifest
+from cli_helpers import call, write_manifest
 
 from pipeline.io.names import NAME_MAX_BYTES
 
@@ -89,8 +89,9 @@ def test_read_only_output_folder_is_one_line_exit_2_nothing_written(inputs, tmp_
     args = " ".join(f"'{a}'" for a in _command(command, view, inputs))
     script = (f"mount --bind '{earlier}' '{view}' && mount -o remount,ro,bind '{view}' && "
               f"exec '{sys.executable}' -m pipeline {args}")
+    repo = Path(__file__).resolve().parents[2]
     done = subprocess.run(["unshare", "-rm", "sh", "-c", script], capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(Path(__file__).parents[1])})
+                          env={**os.environ, "PYTHONPATH": str(repo)})
     assert done.returncode == 2, done.stderr
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1 and "Read-only file system" in lines[0], done.stderr

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from cohort import ball
 from nifti_helpers import save_mask
-from test_bad_input_matrix import call, errors_of, write_manifest
+from cli_helpers import call, errors_of, write_manifest
 
 from pipeline.io.names import MAX_LABELS_CHARS, NAME_MAX_BYTES, TEMPLATES, TEMPORARY_EXTRA
 from pipeline.io.tsv import read_table
@@ -181,5 +181,5 @@ def test_bids_folder_names_case_misnamed_files_and_missing_sessions_file(tmp_pat
 
 
 def test_readme_states_the_label_limit_the_code_applies():
-    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
     assert f"longer than {MAX_LABELS_CHARS} characters" in " ".join(readme.split())
