@@ -159,10 +159,10 @@ class ResponseSettings:
 class ReportSettings:
     """The QA report."""
 
-    max_lesion_panels: int = 200      # lesions shown with slices; the rest listed only
+    max_lesion_panels: int = 0        # lesions shown with slices, flagged first (0 = every lesion)
     low_overlap: float = 0.2          # Dice (0..1); a link with a lower overlap is flagged
     slice_window_mm: float = 40.0     # mm; smallest side of the square shown around a lesion
-    figure_dpi: int = 80              # dots per inch of the embedded figures (page size)
+    figure_dpi: int = 80              # dots per inch of the slice panels (about 1.9 inch each)
     panels_per_row: int = 6           # sessions per row in a lesion's slice figure
 
     def __post_init__(self) -> None:

@@ -193,6 +193,60 @@ def _load_nifti_bytes(raw: bytes, *, gz: bool, name: str,
                      file_affine=file_affine, units_code=units, forms=forms, form_codes=codes)
 
 
+def load_image(path: str | Path, *, settings: VolumeSettings = VolumeSettings(
+        accept_unknown_orientation=True)) -> tuple[np.ndarray, np.ndarray]:
+    """Read a grey-level NIfTI image (e.g. the MRI under a mask) and its RAS+ mm affine.
+
+    The first volume of a 4-D image is kept. With ``scl_slope``/``scl_inter`` set, the values
+    are scaled to float32; otherwise they keep the stored type (no copy). The data stay in
+    stored voxel order. Problems are an ``InputError`` naming the file and the reason.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> path = Path(tempfile.mkdtemp()) / "t1.nii.gz"
+    >>> nib.save(nib.Nifti1Image(np.arange(8, dtype=np.int16).reshape(2, 2, 2),
+    ...                          np.diag([2.0, 2.0, 2.0, 1.0])), str(path))
+    >>> data, affine = load_image(path)
+    >>> int(data[1, 1, 1]), data.dtype.name, float(affine[0, 0])
+    (7, 'int16', 2.0)
+    """
+    path = Path(path)
+    name = str(path)
+    if suffix_of(path) not in NIFTI_SUFFIXES or not path.is_file():
+        raise InputError(f"{name}: not a NIfTI file", path=name)
+    raw = path.read_bytes()
+    gz = suffix_of(path) == ".nii.gz"
+    header = _parse_header(_decompress_head(raw, name) if gz else raw[:544], name)
+    dims = [max(1, int(d)) for d in header["dim"][1:max(1, min(7, int(header["dim"][0]))) + 1]]
+    shape = tuple((dims + [1, 1, 1])[:3])
+    dtype = header.get_data_dtype()
+    if dtype.kind not in "iuf" or dtype.fields:
+        raise InputError(f"{name}: data type {header.get_value_label('datatype')} is not a "
+                         "grey-level image", path=name)
+    check_memory(shape, dtype.itemsize, name, settings)
+    affine, _ = nifti_affine(header, name=name, settings=settings)
+    offset = int(header["vox_offset"])
+    needed = offset + int(np.prod(shape)) * dtype.itemsize
+    if gz:
+        module = _inflate()
+        try:
+            body = module.decompressobj(wbits=31).decompress(raw, needed)
+        except _gzip_errors(module) as exc:
+            raise _gzip_error(exc, name) from None
+    else:
+        body = raw[:needed]
+    if len(body) < needed:
+        raise InputError(f"{name}: file is truncated", path=name)
+    data = np.frombuffer(body, np.uint8)[offset:needed].view(dtype).reshape(shape, order="F")
+    slope, inter = header.get_slope_inter()
+    scaled = slope is not None and np.isfinite(slope) and slope not in (0, 1) or (
+        inter is not None and np.isfinite(inter) and inter != 0)
+    if scaled:
+        data = data * np.float32(slope if slope else 1.0) + np.float32(inter or 0.0)
+    return data, affine
+
+
 def _mask_shape(header: nib.Nifti1Header, name: str) -> tuple[int, int, int]:
     dims = [int(d) for d in header["dim"][1:int(header["dim"][0]) + 1]]
     if not 1 <= len(dims) <= 7 or any(d < 1 for d in dims):

@@ -16,10 +16,11 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from pipeline.geometry import UNIT_TO_MM
-from pipeline.io.names import track_path
-from pipeline.io.tsv import read_table
+from pipeline.errors import PipelineError
 from pipeline.geometry import voxel_volume_mm3
+from pipeline.io.names import track_path
+from pipeline.io.nifti import load_image, load_mask
+from pipeline.io.tsv import read_table
 
 #: Files the report reads, with what they hold (for "missing" messages). Optional ones last.
 INPUT_FILES: dict[str, str] = {
@@ -57,10 +58,29 @@ class ReportInputs:
     tables: dict[str, pd.DataFrame]
     problems: dict[str, str]
     provenance: dict
+    _by_subject: dict = field(default_factory=dict, repr=False, compare=False)
 
     def table(self, name: str) -> pd.DataFrame:
-        """The table read from ``name`` (empty when missing)."""
+        """The table read from ``name`` (empty when missing).
+
+        A table not in :data:`INPUT_FILES` is read from OUT on first use, and its absence is
+        recorded like any other, so a new section needs only its data function.
+        """
+        if name not in self.tables and name.endswith(".tsv"):
+            self.tables[name], problem = read_one(self.out_dir, name, "its section")
+            if problem:
+                self.problems[name] = problem
         return self.tables.get(name, pd.DataFrame())
+
+    def of_subject(self, name: str, subject: str) -> pd.DataFrame:
+        """Rows of table ``name`` for one subject (the table is split once, on first use)."""
+        if name not in self._by_subject:
+            table = self.table(name)
+            self._by_subject[name] = {} if table.empty or "subject" not in table else {
+                str(key): rows for key, rows in table.groupby(
+                    table["subject"].astype(str), sort=False)}
+        found = self._by_subject[name].get(subject)
+        return found if found is not None else subject_rows(self.table(name), "\0none")
 
 
 def load_inputs(out_dir: str | Path, *, out_of_date: Sequence[str] = ()) -> ReportInputs:
@@ -77,17 +97,9 @@ def load_inputs(out_dir: str | Path, *, out_of_date: Sequence[str] = ()) -> Repo
     tables: dict[str, pd.DataFrame] = {}
     problems: dict[str, str] = {}
     for name, what in INPUT_FILES.items():
-        path = out / name
-        if not path.is_file():
-            tables[name] = pd.DataFrame()
-            problems[name] = f"{name} is missing: {what} cannot be shown."
-            continue
-        try:
-            tables[name], note = _checked(name, read_table(path))
-        except (OSError, ValueError, UnicodeDecodeError) as exc:
-            tables[name], note = pd.DataFrame(), f"could not be read ({_short(exc)})"
-        if note:
-            problems[name] = f"{name} {note}: {what} cannot be shown."
+        tables[name], problem = read_one(out, name, what)
+        if problem:
+            problems[name] = problem
     provenance: dict = {}
     path = out / "provenance.json"
     if not path.is_file():
@@ -103,6 +115,18 @@ def load_inputs(out_dir: str | Path, *, out_of_date: Sequence[str] = ()) -> Repo
     for number, text in enumerate(out_of_date, start=1):
         problems[f"run state {number}"] = f"Out of date: {text}; the page shows it as it is."
     return ReportInputs(out, tables, problems, provenance)
+
+
+def read_one(out: Path, name: str, what: str) -> tuple[pd.DataFrame, str]:
+    """One table of OUT and the message when it is missing or unusable (else "")."""
+    path = out / name
+    if not path.is_file():
+        return pd.DataFrame(), f"{name} is missing: {what} cannot be shown."
+    try:
+        table, note = _checked(name, read_table(path))
+    except (OSError, ValueError, UnicodeDecodeError) as exc:
+        table, note = pd.DataFrame(), f"could not be read ({_short(exc)})"
+    return table, (f"{name} {note}: {what} cannot be shown." if note else "")
 
 
 def _checked(name: str, table: pd.DataFrame) -> tuple[pd.DataFrame, str]:
@@ -133,6 +157,18 @@ def subject_rows(table: pd.DataFrame, subject: str) -> pd.DataFrame:
     if table.empty or "subject" not in table:
         return table.iloc[0:0]
     return table[table["subject"].astype(str) == subject]
+
+
+def records(frame: pd.DataFrame) -> list[dict]:
+    """Rows of ``frame`` as dicts of plain Python values (much faster than ``iterrows``).
+
+    Examples
+    --------
+    >>> records(pd.DataFrame({"a": [1], "b": ["x"]}))
+    [{'a': 1, 'b': 'x'}]
+    """
+    columns = list(frame.columns)
+    return [dict(zip(columns, row)) for row in frame.to_numpy(dtype=object).tolist()]
 
 
 def is_true(value: object) -> bool:
@@ -184,7 +220,7 @@ class ScanCache:
         return self._images[session]
 
     def _read_image(self, session: str) -> tuple[np.ndarray | None, str]:
-        rows = subject_rows(self.inputs.table("masks.tsv"), self.subject)
+        rows = self.inputs.of_subject("masks.tsv", self.subject)
         rows = rows[rows["session"].astype(str) == session] if "session" in rows else rows
         given = str(rows["image"].iloc[0]) if "image" in rows and len(rows) else ""
         if not given:
@@ -198,25 +234,20 @@ class ScanCache:
         if _changed(self.inputs, self.subject, session, path):
             return None, "image changed after the run"
         try:
-            img = nib.load(str(path))
-            mm = np.diag([_mm_per_unit(img)] * 3 + [1.0]) @ img.affine
-            if img.shape[:3] != scan.stored.shape or not np.allclose(
-                    mm, scan.stored_affine, atol=1e-3):
-                return None, "image grid differs from the mask"
-            canonical = nib.as_closest_canonical(img)
-            data = np.asanyarray(canonical.dataobj, dtype=np.float32)
-        except _IMAGE_ERRORS as exc:
+            data, affine = load_image(path)
+        except (PipelineError, *_IMAGE_ERRORS) as exc:
             return None, f"image could not be read ({_short(exc)})"
-        while data.ndim > 3:
-            data = data[..., 0]
-        return data, ""
+        if data.shape != scan.stored.shape or not np.allclose(affine, scan.stored_affine,
+                                                              atol=1e-3):
+            return None, "image grid differs from the mask"
+        return canonical(data, affine)[0], ""
 
     def window(self, session: str) -> tuple[float, float] | None:
         """Grey-level window of the session's MRI image: its 1st and 99.5th percentiles."""
         data, _ = self.image(session)
         if data is None:
             return None
-        sample = data[::3, ::3, ::3]
+        sample = data[::4, ::4, ::4]
         sample = sample[np.isfinite(sample)]
         if sample.size == 0:
             return None
@@ -237,26 +268,33 @@ def _changed(inputs: ReportInputs, subject: str, session: str, path: Path) -> bo
         return hashlib.file_digest(handle, "sha256").hexdigest() != recorded
 
 
-def _mm_per_unit(img) -> float:
-    """Millimetres per spatial unit of a NIfTI image (xyzt_units; unknown is taken as mm)."""
-    header = getattr(img, "header", None)
-    if header is None or "xyzt_units" not in header:
-        return 1.0
-    return UNIT_TO_MM.get(int(header["xyzt_units"]) & 0x07, 1.0)
+def canonical(data: np.ndarray, affine: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``data`` turned to the closest RAS orientation (a view: axes flipped or swapped) and
+    its affine, as nibabel's ``as_closest_canonical`` does.
+
+    Examples
+    --------
+    >>> flipped = np.diag([-2.0, 1.0, 1.0, 1.0])
+    >>> data, affine = canonical(np.arange(3).reshape(3, 1, 1), flipped)
+    >>> data.ravel().tolist(), affine[0].tolist()
+    ([2, 1, 0], [2.0, 0.0, 0.0, -4.0])
+    """
+    ornt = nib.orientations.io_orientation(affine)
+    if np.array_equal(ornt, [[0, 1], [1, 1], [2, 1]]):
+        return data, affine
+    turned = nib.orientations.apply_orientation(data, ornt)
+    return turned, affine @ nib.orientations.inv_ornt_aff(ornt, data.shape)
 
 
 def _read_scan(path: Path) -> Scan | None:
     if not path.is_file():
         return None
     try:
-        img = nib.load(str(path))
-        stored = np.asanyarray(img.dataobj)
-        canonical = nib.as_closest_canonical(img)
-        scale = np.diag([_mm_per_unit(img)] * 3 + [1.0])     # tables are in mm; files may not be
-        return Scan(stored, np.asanyarray(canonical.dataobj), scale @ canonical.affine,
-                    scale @ img.affine)
-    except _IMAGE_ERRORS:
+        mask = load_mask(path)
+    except (PipelineError, *_IMAGE_ERRORS):
         return None
+    turned, affine = canonical(mask.data, mask.affine)
+    return Scan(mask.data, turned, affine, mask.affine)
 
 
 def find_image(inputs: ReportInputs, given: str) -> Path | None:
@@ -298,20 +336,20 @@ def component_lesions(lesions: pd.DataFrame, cache: ScanCache,
     """
     mapping: dict[tuple[str, int], int] = {}
     if "lesion" in lesions:
-        for _, row in lesions.iterrows():
+        for row in records(lesions):
             if math.isfinite(as_number(row["lesion"])):
                 mapping[(str(row["session"]), int(row["component"]))] = int(row["lesion"])
     if matches is not None and len(matches):
         for end in ("from", "to"):
             if f"lesion_{end}" not in matches:
                 continue
-            for _, row in matches.iterrows():
+            for row in records(matches):
                 lesion = as_number(row[f"lesion_{end}"])
                 key = (str(row[f"session_{end}"]), int(row[f"component_{end}"]))
                 if math.isfinite(lesion) and key not in mapping:
                     mapping[key] = int(lesion)
     boxes = [f"bbox_{a}_{m}" for a in "ijk" for m in ("min", "max")]
-    for _, row in lesions.iterrows():
+    for row in records(lesions):
         key = (str(row["session"]), int(row["component"]))
         box = [as_number(row.get(b)) for b in boxes]
         scan = None if key in mapping else cache.track(key[0])
@@ -325,10 +363,37 @@ def component_lesions(lesions: pd.DataFrame, cache: ScanCache,
     return mapping
 
 
-def lesion_centres(cache: ScanCache, lesion: int,
+def lesion_centres(cache: ScanCache, lesion: int, sessions: list[str],
+                   components: pd.DataFrame | None = None
+                   ) -> tuple[dict[str, np.ndarray], float]:
+    """RAS mm centroid of ``lesion`` per session where it is seen, and its largest radius (mm)
+    from its volume (sphere of equal volume).
+
+    From the lesion's rows of lesions.tsv (``components``: centroid_x/y/z_mm weighted by
+    volume_mm3) when they carry centroids, which needs no image; otherwise from the track
+    images.
+    """
+    columns = ["centroid_x_mm", "centroid_y_mm", "centroid_z_mm", "volume_mm3"]
+    if components is not None and len(components) and all(c in components for c in columns):
+        values = np.array([pd.to_numeric(components[c], errors="coerce").to_numpy(float)
+                           for c in columns]).T
+        names = components["session"].astype(str).to_numpy()
+        usable = np.isfinite(values).all(axis=1) & (values[:, 3] > 0)
+        centres, radius = {}, 0.0
+        for session in dict.fromkeys(names[usable]):
+            if session not in sessions:
+                continue
+            rows = values[usable & (names == session)]
+            weights = rows[:, 3]
+            centres[session] = (rows[:, :3] * weights[:, None]).sum(axis=0) / weights.sum()
+            radius = max(radius, (3.0 * weights.sum() / (4.0 * math.pi)) ** (1 / 3))
+        if centres:
+            return centres, radius
+    return _track_centres(cache, lesion, sessions)
+
+
+def _track_centres(cache: ScanCache, lesion: int,
                    sessions: list[str]) -> tuple[dict[str, np.ndarray], float]:
-    """RAS mm centroid of ``lesion`` per session where the track shows it, and its largest
-    radius (mm) from the voxel count (sphere of equal volume)."""
     centres: dict[str, np.ndarray] = {}
     radius = 0.0
     for session in sessions:

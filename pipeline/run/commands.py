@@ -236,7 +236,8 @@ def _remove_stale_temporaries(out: Path) -> None:
     import re
 
     pattern = re.compile(r"^\.[^.]+\.[a-z0-9_]{8}\.")
-    for folder in (out, out / "tracks", out / ".cache" / "volumes"):
+    for folder in (out, out / "tracks", out / ".cache" / "volumes", out / "report",
+                   out / ".cache" / "report"):
         if folder.is_dir():
             for path in folder.iterdir():
                 if path.is_file() and pattern.match(path.name) and path.name != ".lock":
@@ -282,8 +283,11 @@ def _fit_stage(out: Path, *, config: Config, events: pd.DataFrame | None, run: s
 
 def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None = None,
             events: Path | None = None, corrections: Path | None = None, workers: int = 1,
-            scheduler: str | None = None, quiet: bool = False) -> int:
-    """``lesion-growth run``: every stage, every output; provenance.json is written last."""
+            scheduler: str | None = None, quiet: bool = False, report: bool = True) -> int:
+    """``lesion-growth run``: every stage, every output; provenance.json is written last.
+
+    ``report=False`` leaves the report to the caller (the demo builds it once, after
+    ``evaluate``)."""
     started = _now()
     table = _read_corrections(corrections)          # usage errors before any work
     if events is not None:
@@ -305,10 +309,10 @@ def run_all(input: Path, out: Path, *, config: Config, config_path: Path | None 
         write_errors(stage.errors + errors, out)
         write_dataset_description(out)
         write_provenance(out, **provenance, extra_files=files)    # before the report reads it
-        report = _report(out, config)
+        page = _report(out, config) if report else None
         run_state.finish(out, run)
-    _final_lines(out, stage, errors, report)
-    return 1 if stage.errors or errors or report is None else 0
+    _final_lines(out, stage, errors, page)
+    return 1 if stage.errors or errors or (report and page is None) else 0
 
 
 def _report(out: Path, config: Config) -> Path | None:
@@ -489,16 +493,18 @@ def run_demo(out: Path, *, workers: int = 1, quiet: bool = False, subjects: int 
     demo = make_demo_inputs(out / "inputs", n_subjects=subjects)
     say(f"demo cohort (invented) written to {out / 'inputs'} in {time.perf_counter() - t0:.1f} s")
     code = run_all(demo.manifest, out, config=load_config(None), events=demo.events,
-                   workers=workers, quiet=quiet)
+                   workers=workers, quiet=quiet, report=False)
     evaluate_only(out, demo.outcomes, figures=("beta",), phase="untreated", model="power",
                   positive="progression")
-    _report(out, load_config(None))
+    page = _report(out, load_config(None))
     planted = {(e["subject"], e["session"]) for e in
                json.loads(Path(demo.truth).read_text())["expected"]["errors"]}
     found = {(e["subject"], e["session"]) for e in read_errors(out)}
     broken = f"; errors.tsv lists the deliberately broken scan(s) {sorted(planted)}" \
         if planted else ""
     say(f"demo finished in {time.perf_counter() - t0:.1f} s{broken}; open {out / 'report.html'}")
+    if page is None:
+        return 1          # the tables are complete; the report is not
     if code == 1 and found == planted:
         return 0          # only the planted failure: the demo did what it should
     return code

@@ -11,9 +11,34 @@ from pipeline.io.tsv import read_table
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
+    import pipeline.report.build as build
+
     out = tmp_path_factory.mktemp("demo") / "out"
-    code = main(["demo", str(out), "--subjects", "6", "-q"])
+    calls = []
+    original = build.write_report
+
+    def counted(*args, **kwargs):
+        calls.append(args)
+        return original(*args, **kwargs)
+    build.write_report = counted
+    try:
+        code = main(["demo", str(out), "--subjects", "6", "-q"])
+    finally:
+        build.write_report = original
+    _REPORT_BUILDS[:] = calls
     return out, code, json.loads((out / "inputs" / "truth.json").read_text())
+
+
+_REPORT_BUILDS: list = []
+
+
+def test_demo_builds_its_report_once_with_the_evaluation(demo):
+    out, _, _ = demo
+    assert len(_REPORT_BUILDS) == 1
+    index = (out / "report.html").read_text(encoding="utf-8")
+    evaluation = index.split('id="evaluation"')[1].split("</section>")[0]
+    assert "<table" in evaluation    # built after evaluate: the evaluation is on the page
+    assert len(list((out / "report").glob("subject-*.html"))) == 6
 
 
 def test_demo_exit_and_outputs(demo):

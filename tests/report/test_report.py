@@ -1,7 +1,7 @@
-"""The QA report: a self-contained page built from an invented OUT folder.
+"""The QA report: a cohort index and one page per subject, built from an invented OUT folder.
 
-The page is parsed with the standard library's html.parser; images are decoded and read back with
-Pillow (an independent PNG reader).
+The pages are parsed with the standard library's html.parser; images are decoded and read back
+with Pillow (an independent PNG reader).
 """
 from __future__ import annotations
 
@@ -23,7 +23,8 @@ from scipy.integrate import solve_ivp
 from pipeline import DISCLAIMER
 from pipeline.report.build import write_report
 from pipeline.report.data import ScanCache, component_lesions, load_inputs, subject_rows
-from pipeline.report.figures import PNG_SIGNATURE, power_curve
+from pipeline.report.figures import power_curve
+from pipeline.report.png import PNG_SIGNATURE
 from pipeline.settings import ReportSettings
 from pipeline.io.tsv import read_table, write_table
 from tests.report_fixtures import ReportFixture, build_report_folder
@@ -86,12 +87,49 @@ class Page(HTMLParser):
                 if t == tag and all(a.get(k.rstrip("_")) == v for k, v in attrs.items())]
 
 
+class Site:
+    """Every page of one report (report.html and report/*.html) read as one: ids, elements and
+    links of all pages; ``order`` is the index page's; ``links_in`` keeps the fragment (#id) of
+    each link, ``targets`` the (file, id) it points to."""
+
+    def __init__(self, index: Path) -> None:
+        self.index = index
+        self.out = index.parent
+        files = [index] + sorted((self.out / "report").glob("*.html"))
+        self.pages = {p: Page(p.read_text(encoding="utf-8")) for p in files}
+        self.order = self.pages[index].order
+        self.elements = [e for page in self.pages.values() for e in page.elements]
+        self.text_by_id: dict[str, list[str]] = {}
+        self.links_in: dict[str, list[str]] = {}
+        self.targets: list[tuple[Path, str, str]] = []    # (file, linked file, id)
+        for path, page in self.pages.items():
+            for ident, texts in page.text_by_id.items():
+                self.text_by_id.setdefault(ident, []).extend(texts)
+            for ident, hrefs in page.links_in.items():
+                self.links_in.setdefault(ident, []).extend(
+                    "#" + h.split("#", 1)[1] if "#" in h else h for h in hrefs)
+            for tag, attrs in page.elements:
+                if tag == "a" and "href" in attrs:
+                    target, _, ident = attrs["href"].partition("#")
+                    linked = (path.parent / target).resolve() if target else path.resolve()
+                    self.targets.append((path, linked, ident))
+
+    def text(self, ident: str) -> str:
+        return re.sub(r"\s+", " ", " ".join(self.text_by_id[ident])).strip()
+
+    def find(self, tag: str, **attrs: str) -> list[dict[str, str]]:
+        return [a for page in self.pages.values() for a in page.find(tag, **attrs)]
+
+    def page_of(self, ident: str) -> Page:
+        return next(p for p in self.pages.values() if ident in p.text_by_id)
+
+
 @pytest.fixture(scope="module")
-def built(tmp_path_factory) -> tuple[ReportFixture, str, Page]:
+def built(tmp_path_factory) -> tuple[ReportFixture, str, Site]:
     fixture = build_report_folder(tmp_path_factory.mktemp("report"))
     path = write_report(fixture.out)
     text = path.read_text(encoding="utf-8")
-    return fixture, text, Page(text)
+    return fixture, text, Site(path)
 
 
 def _copy(fixture: ReportFixture, tmp_path: Path) -> Path:
@@ -102,8 +140,10 @@ def _copy(fixture: ReportFixture, tmp_path: Path) -> Path:
 
 
 def _digests(folder: Path) -> dict[str, str]:
+    """Checksums of the stages' outputs (the report's own files and cache left out)."""
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(folder.rglob("*")) if p.is_file() and p.name != "report.html"}
+            for p in sorted(folder.rglob("*")) if p.is_file() and p.name != "report.html"
+            and p.relative_to(folder).parts[0] not in ("report", ".cache")}
 
 
 def test_report_is_written_atomically_and_inputs_are_untouched(built, tmp_path):
@@ -113,33 +153,47 @@ def test_report_is_written_atomically_and_inputs_are_untouched(built, tmp_path):
     path = write_report(out)
     assert path == out / "report.html" and path.is_file()
     assert _digests(out) == before  # reads OUT, never rewrites a stage's output
-    assert sorted(p.name for p in out.iterdir() if p.name.startswith(".")) == []
+    # no temporary file of an atomic write is left behind (only the panel cache is hidden)
+    assert sorted(p.name for p in out.iterdir() if p.name.startswith(".")) == [".cache"]
+    for folder in (out / "report", out / ".cache" / "report"):
+        assert [p.name for p in folder.iterdir() if p.name.startswith(".")] == []
+    pages = sorted(p.name for p in (out / "report").glob("subject-*.html"))
+    assert pages == ["subject-P01.html", "subject-P02.html", "subject-P03.html"]
 
 
 def test_no_external_references(built):
-    _, text, page = built
-    # Common practice: a self-contained page loads nothing; only in-page (#) and data: URIs.
-    for tag, attrs in page.elements:
-        assert tag not in ("iframe", "object", "embed", "base", "frame")
-        for name in ("src", "href", "action", "formaction", "srcset", "poster", "data"):
-            if name in attrs:
-                value = attrs[name]
-                assert value.startswith("#") or value.startswith("data:"), (tag, name, value)
-        if tag == "script":
-            assert "src" not in attrs
-        if tag == "link":
-            assert attrs.get("href", "").startswith("data:"), attrs
-    lowered = text.lower()
-    assert "http://" not in lowered and "https://" not in lowered
-    assert re.search(r"(?<![a-z])url\(", lowered) is None  # no CSS url(...)
-    assert "@import" not in lowered
+    _, _, site = built
+    # Common practice: an offline report loads nothing from elsewhere: in-page (#) links, data:
+    # URIs and relative links to files of the report itself, which must exist.
+    for path, page in site.pages.items():
+        for tag, attrs in page.elements:
+            assert tag not in ("iframe", "object", "embed", "base", "frame")
+            for name in ("src", "href", "action", "formaction", "srcset", "poster", "data"):
+                if name in attrs:
+                    value = attrs[name]
+                    if value.startswith("#") or value.startswith("data:"):
+                        continue
+                    assert ":" not in value.split("#")[0] and not value.startswith("/"), value
+                    target = (path.parent / value.split("#")[0]).resolve()
+                    assert target.is_file(), (path.name, value)
+                    assert target.is_relative_to(site.out.resolve())
+    for path in [site.index] + sorted((site.out / "report").iterdir()):
+        lowered = path.read_text(encoding="utf-8").lower()
+        assert "http://" not in lowered and "https://" not in lowered
+        if path.suffix != ".js":   # the script's URL(...) are blob: and page addresses
+            assert re.search(r"(?<![a-z])url\(", lowered) is None  # no CSS url(...)
+        assert "@import" not in lowered and "fetch(" not in lowered
+        assert "xmlhttprequest" not in lowered
 
 
 def test_every_image_is_an_embedded_png_that_decodes(built):
-    _, _, page = built
-    images = page.find("img")
-    # 1 beta figure + timelines of P01 and P02 + slices of 5 lesions (P03 has no lesion)
-    assert len(images) == 8
+    fixture, _, site = built
+    images = site.find("img")
+    longitudinal = read_table(fixture.out / "longitudinal.tsv")
+    # one panel per session of every lesion of P01 and P02 (P03 has no lesion); placeholders
+    # ("no slice") stand where a session has no track slice
+    placeholders = sum(1 for _, a in site.elements if a.get("class") == "noslice")
+    assert len(images) + placeholders == len(longitudinal) and len(images) >= 10
     for attrs in images:
         prefix = "data:image/png;base64,"
         assert attrs["src"].startswith(prefix)
@@ -149,14 +203,30 @@ def test_every_image_is_an_embedded_png_that_decodes(built):
         with Image.open(io.BytesIO(data)) as image:  # Reference: Pillow's PNG decoder
             image.load()
             assert image.format == "PNG" and image.width > 20 and image.height > 20
+            assert (image.width, image.height) == (int(attrs["width"]), int(attrs["height"]))
             pixels = np.asarray(image.convert("RGB")).reshape(-1, 3)
             assert len(np.unique(pixels, axis=0)) > 2  # not a blank canvas
         assert attrs.get("alt")
 
 
+def test_timelines_are_svg_with_a_titled_point_per_session(built):
+    fixture, _, site = built
+    longitudinal = read_table(fixture.out / "longitudinal.tsv")
+    for subject in ("P01", "P02"):
+        page = site.pages[site.out / "report" / f"subject-{subject}.html"]
+        titles = [t for t in page.text_by_id if t == "tl-title"]
+        assert titles and f"Lesion volumes of {subject} over time" in page.text("tl-title")
+        points = [a for t, a in page.elements if t == "g" and a.get("class") == "pt"]
+        assert len(points) == int((longitudinal["subject"] == subject).sum())
+        assert all(a.get("tabindex") == "0" for a in points)   # reachable with the keyboard
+
+
 def test_caution_banner_comes_first(built):
     _, _, page = built
-    assert page.text("caution") == "Caution. " + DISCLAIMER
+    assert page.text("caution").startswith("Caution. " + DISCLAIMER)
+    for each in page.pages.values():    # every page carries the caution first
+        assert each.text("caution") == "Caution. " + DISCLAIMER
+        assert each.order.index("caution") < each.order.index("h1")
     first_heading = page.order.index("h1")
     assert page.order.index("caution") < first_heading < page.order.index("summary")
     assert page.order.index("flagged") < page.order.index("summary")  # flagged items first
@@ -165,10 +235,10 @@ def test_caution_banner_comes_first(built):
 def test_known_flags_are_listed_and_link_to_their_place(built):
     fixture, _, page = built
     flags = page.text("flagged")
-    ids = set(page.text_by_id)
-    for attrs in page.find("a"):
-        if attrs["href"].startswith("#"):
-            assert attrs["href"][1:] in ids, attrs["href"]  # every in-page link has a target
+    ids = {p.resolve(): set(each.text_by_id) for p, each in page.pages.items()}
+    for source, linked, ident in page.targets:
+        if ident:   # every link to a place has its target, on the page it names
+            assert ident in ids[linked], (source.name, linked.name, ident)
     link_rows = [a for a in page.find("tr") if a.get("id", "").startswith("link-")]
 
     def row_of(link):
@@ -241,8 +311,7 @@ def test_links_fall_back_to_low_overlap_without_review_columns(built, tmp_path):
     matches = read_table(out / "matches.tsv")
     write_table(matches.drop(columns=["review", "review_reason", "lesion_from", "lesion_to"]),
                 out / "matches.tsv")
-    page = Page(write_report(out, settings=ReportSettings(low_overlap=0.5))
-                .read_text(encoding="utf-8"))
+    page = Site(write_report(out, settings=ReportSettings(low_overlap=0.5)))
     flagged = [a for a in page.find("tr") if a.get("id", "").startswith("link-")
                and a.get("class") == "flagged"]
     assert len(flagged) == int((matches["overlap"] < 0.5).sum()) == 2
@@ -286,7 +355,7 @@ def test_relative_input_path_is_found_from_out_parent(built, tmp_path):
     provenance = (out / "provenance.json").read_text(encoding="utf-8")
     provenance = provenance.replace(str(fixture.inputs / "manifest.tsv"), "inputs/manifest.tsv")
     (out / "provenance.json").write_text(provenance, encoding="utf-8")
-    page = Page(write_report(out).read_text(encoding="utf-8"))
+    page = Site(write_report(out))
     assert "over the MRI image: session(s) 01, 02, 03" in page.text("lesion-P01-1")
 
 
@@ -296,7 +365,7 @@ def test_missing_files_are_named_and_the_rest_is_shown(built, tmp_path):
     for name in ("fits.tsv", "group_fits.tsv", "evaluation.tsv", "provenance.json"):
         (out / name).unlink()
     shutil.rmtree(out / "tracks")
-    page = Page(write_report(out).read_text(encoding="utf-8"))
+    page = Site(write_report(out))
     missing = page.text("inputs")
     assert "fits.tsv is missing" in missing and "group_fits.tsv is missing" in missing
     assert "tracks/ is missing: lesion slices cannot be drawn." in missing
@@ -304,9 +373,8 @@ def test_missing_files_are_named_and_the_rest_is_shown(built, tmp_path):
     assert "No evaluation.tsv in OUT" in page.text("evaluation")
     assert "No group fits to show." in page.text("summary")
     assert "lesion 3 is not measurable" in page.text("flagged")  # lesion from matches.tsv
-    images = page.find("img")  # timelines of P01 and P02 only: no betas, no tracks
-    assert [a["alt"] for a in images] == ["Lesion volumes of P01 over time",
-                                          "Lesion volumes of P02 over time"]
+    assert page.find("img") == []   # no track images: no slices
+    assert "Lesion volumes of P01 over time" in page.text("tl-title")  # timelines still drawn
 
 
 def test_components_without_a_known_lesion_are_listed(built, tmp_path):
@@ -315,7 +383,7 @@ def test_components_without_a_known_lesion_are_listed(built, tmp_path):
     shutil.rmtree(out / "tracks")
     matches = read_table(out / "matches.tsv")
     write_table(matches.drop(columns=["lesion_from", "lesion_to"]), out / "matches.tsv")
-    page = Page(write_report(out).read_text(encoding="utf-8"))
+    page = Site(write_report(out))
     assert "session 02 component 3 is not measurable" in page.text("flagged")
     assert "#subject-P01" in page.links_in["flagged"]
     assert "The lesion of each component is unknown" in page.text("subject-P01")
@@ -326,7 +394,7 @@ def test_components_without_a_known_lesion_are_listed(built, tmp_path):
 
 
 def test_empty_out_folder_gives_a_page_that_says_so(tmp_path):
-    page = Page(write_report(tmp_path).read_text(encoding="utf-8"))
+    page = Site(write_report(tmp_path))
     missing = page.text("inputs")
     for name in ("lesions.tsv", "masks.tsv", "matches.tsv", "longitudinal.tsv", "fits.tsv",
                  "group_fits.tsv", "errors.tsv"):
@@ -343,7 +411,7 @@ def test_header_only_tables_do_not_break_the_page(built, tmp_path):
                  "group_fits.tsv", "errors.tsv", "events.tsv", "evaluation.tsv"):
         columns = read_table(out / name).columns
         write_table(pd.DataFrame(columns=columns), out / name)
-    page = Page(write_report(out).read_text(encoding="utf-8"))
+    page = Site(write_report(out))
     assert "Every input the report reads was found." in page.text("inputs")
     assert "Subjects 0" in page.text("summary")
     assert "No input failed." in page.text("failures")
@@ -353,12 +421,14 @@ def test_header_only_tables_do_not_break_the_page(built, tmp_path):
 def test_panel_cap_limits_slice_figures(built, tmp_path):
     fixture, _, _ = built
     out = _copy(fixture, tmp_path)
-    page = Page(write_report(out, settings=ReportSettings(max_lesion_panels=2))
-                .read_text(encoding="utf-8"))
-    slices = [a for a in page.find("img") if a["alt"].startswith("Slices of lesion")]
-    assert len(slices) == 2
-    text = " ".join(page.text(f"lesion-{s}-{n}") for s, n in (("P01", 3), ("P02", 1), ("P02", 2)))
-    assert text.count("Slices not drawn") == 3
+    page = Site(write_report(out, settings=ReportSettings(max_lesion_panels=2)))
+    drawn = {(a["alt"].split(",")[0]) for a in page.find("img")}
+    flagged = {a["id"] for a in page.find("article", class_="lesion flagged")}
+    articles = [a["id"] for a in page.find("article") if "lesion" in a.get("class", "")]
+    assert len(drawn) == 2 and len(flagged) >= 2
+    with_slices = [i for i in articles if "Slices not drawn" not in page.text(i)]
+    assert len(with_slices) == 2 and set(with_slices) <= flagged   # flagged lesions first
+    assert sum("Slices not drawn" in page.text(i) for i in articles) == len(articles) - 2
 
 
 def test_table_text_is_escaped(built, tmp_path):
@@ -381,8 +451,9 @@ def test_run_details_come_from_provenance_without_paths(built):
 
 
 def test_report_stays_small(built):
-    _, text, _ = built
-    assert len(text.encode("utf-8")) < 1_000_000  # common practice: a page that opens quickly
+    _, _, site = built
+    for path in site.pages:   # common practice: pages that open quickly
+        assert path.stat().st_size < 1_000_000, path.name
 
 
 @pytest.mark.parametrize("beta", [0.5, 2.0 / 3.0, 1.0, 1.3])
@@ -426,7 +497,7 @@ def test_tables_without_key_columns_or_with_bad_ids_are_reported(built, tmp_path
     matches.loc[0, "component_to"] = "n/a"
     write_table(matches, out / "matches.tsv")
     (out / "events.tsv").write_bytes(b"\xff\xfe\x00broken")
-    page = Page(write_report(out).read_text(encoding="utf-8"))
+    page = Site(write_report(out))
     missing = page.text("inputs")
     assert "fits.tsv lacks the column(s) lesion" in missing
     assert "events.tsv could not be read" in missing

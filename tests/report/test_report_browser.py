@@ -1,7 +1,9 @@
 """The QA report in a real headless browser (Debian's chromium + chromium-driver via selenium).
 
-The page must load without console errors, every figure must decode, a screenshot must not be
-blank, and the review controls must produce the corrections.tsv rows a reviewer asked for.
+Every page (the index and each subject's) must load without console errors, every figure must
+decode, timeline points must show their values on focus, marks made on different pages must come
+out as one corrections.tsv (localStorage shared by the file:// pages of one report), and the
+review queue must walk the flagged items across pages with the keyboard, also filtered by kind.
 Skips with a reason when chromium, chromedriver or selenium is not installed
 (``apt-get install chromium chromium-driver``; ``pip install selenium``).
 """
@@ -84,10 +86,21 @@ def browser(tmp_path_factory, downloads):
     driver.quit()
 
 
+def _open(driver, path: Path, anchor: str = "") -> None:
+    driver.get(path.resolve().as_uri() + (f"#{anchor}" if anchor else ""))
+
+
+def _subject_page(report, subject: str) -> Path:
+    _, index = report
+    return index.parent / "report" / f"subject-{subject}.html"
+
+
 @pytest.fixture
 def page(browser, report):
     _, path = report
-    browser.get(path.resolve().as_uri())  # a fresh page: no marks from an earlier test
+    _open(browser, path)
+    browser.execute_script("window.localStorage.clear();")   # no marks from an earlier test
+    _open(browser, path)
     return browser
 
 
@@ -105,21 +118,52 @@ def _preview(driver) -> str:
     return driver.find_element(By.ID, "corrections-preview").get_attribute("textContent")
 
 
-def test_page_loads_without_console_errors(browser, report):
+def _severe(driver) -> list:
+    return [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
+
+
+def test_pages_load_without_console_errors(browser, report):
     _, path = report
-    browser.get(path.resolve().as_uri())
-    assert browser.title == "Lesion growth QA report"
-    severe = [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
-    assert severe == []
-    assert browser.find_element(By.ID, "caution").is_displayed()
+    for target in [path] + sorted((path.parent / "report").glob("subject-*.html")):
+        _open(browser, target)
+        assert browser.title.endswith("Lesion growth QA report"), target.name
+        assert _severe(browser) == [], target.name
+        assert browser.find_element(By.ID, "caution").is_displayed()
+        assert browser.execute_script("return !!window.LESION_GROWTH_QUEUE;")  # queue.js loaded
 
 
-def test_every_figure_decodes(page):
-    sizes = page.execute_script(
-        "return Array.from(document.images).map(i => [i.complete, i.naturalWidth, "
-        "i.naturalHeight]);")
-    assert len(sizes) == 8
-    assert all(done and width > 0 and height > 0 for done, width, height in sizes)
+def test_every_figure_decodes(browser, report):
+    fixture, _ = report
+    longitudinal = read_table(fixture.out / "longitudinal.tsv")
+    total = 0
+    for subject in ("P01", "P02"):
+        _open(browser, _subject_page(report, subject))
+        browser.execute_script("document.querySelectorAll('img').forEach(i => i.loading = "
+                               "'eager');")
+        deadline = time.monotonic() + 10
+        sizes = []
+        while time.monotonic() < deadline:
+            sizes = browser.execute_script(
+                "return Array.from(document.images).map(i => [i.complete, i.naturalWidth, "
+                "i.naturalHeight]);")
+            if all(done for done, _, _ in sizes):
+                break
+            time.sleep(0.1)
+        assert sizes and all(done and w > 0 and h > 0 for done, w, h in sizes)
+        points = browser.find_elements(By.CSS_SELECTOR, "svg.timeline g.pt")
+        assert len(points) == int((longitudinal["subject"] == subject).sum())
+        total += len(sizes)
+    assert total >= 10
+
+
+def test_focusing_a_timeline_point_shows_its_values(browser, report):
+    _open(browser, _subject_page(report, "P01"))
+    point = browser.find_elements(By.CSS_SELECTOR, "svg.timeline g.pt")[0]
+    tip = point.find_element(By.CSS_SELECTOR, "text.tip")
+    assert not tip.is_displayed()
+    browser.execute_script("arguments[0].focus();", point)
+    assert tip.is_displayed()
+    assert tip.text.startswith("lesion ") and " · session " in tip.text and " mm³" in tip.text
 
 
 def test_screenshot_is_not_blank(page):
@@ -128,45 +172,104 @@ def test_screenshot_is_not_blank(page):
     assert len(np.unique(pixels, axis=0)) > 20
 
 
-def test_marking_a_link_wrong_and_saving_gives_corrections(page, report, downloads):
-    fixture, _ = report
-    subject, _, _, session, component = fixture.low_confidence_link
-    wrong = _controls(page, "qa-wrong", subject, session, component)[0]
-    wrong.click()
-    move = _controls(page, "qa-move", "P02", "02", 2)[0]
-    Select(move).select_by_value("1")
-    note = _controls(page, "qa-note", "P02", "02", 2)[0]
-    note.send_keys("looks like lesion 1")
-    expected = (f"{HEADER}\n{subject}\t{session}\t{component}\tnew\t\n"
-                "P02\t02\t2\t1\tlooks like lesion 1\n")
-    assert _preview(page) == expected
-    # every control of that component shows the same choice
-    selects = _controls(page, "qa-move", subject, session, component)
-    assert {s.get_attribute("value") for s in selects} == {"new"}
-    assert page.find_element(By.ID, "corrections-count").text == "2"
-    target = downloads / "corrections.tsv"
-    target.unlink(missing_ok=True)
-    page.find_element(By.ID, "save-corrections").click()
+def _wait_for(target: Path) -> None:
     deadline = time.monotonic() + 10
     while time.monotonic() < deadline and not target.is_file():
         time.sleep(0.1)
     assert target.is_file(), "the browser did not save corrections.tsv"
+
+
+def test_marks_from_every_page_give_one_corrections_file(page, report, downloads):
+    fixture, index = report
+    subject, _, _, session, component = fixture.low_confidence_link
+    _open(page, _subject_page(report, subject))
+    _controls(page, "qa-wrong", subject, session, component)[0].click()
+    selects = _controls(page, "qa-move", subject, session, component)
+    assert {s.get_attribute("value") for s in selects} == {"new"}   # every control agrees
+    _open(page, _subject_page(report, "P02"))          # another page of the same report
+    assert page.find_element(By.ID, "corrections-count-bar").text == "1"
+    Select(_controls(page, "qa-move", "P02", "02", 2)[0]).select_by_value("1")
+    _controls(page, "qa-note", "P02", "02", 2)[0].send_keys("looks like lesion 1")
+    expected = (f"{HEADER}\n{subject}\t{session}\t{component}\tnew\t\n"
+                "P02\t02\t2\t1\tlooks like lesion 1\n")
+    _open(page, index)                                  # the index gathers both pages' marks
+    assert _preview(page) == expected
+    assert page.find_element(By.ID, "corrections-count").text == "2"
+    target = downloads / "corrections.tsv"
+    target.unlink(missing_ok=True)
+    page.find_element(By.ID, "save-corrections").click()
+    _wait_for(target)
     assert target.read_text(encoding="utf-8") == expected
     table = read_table(target)  # the project's own TSV reader accepts it
     assert list(table.columns) == ["subject", "session", "component", "lesion", "note"]
     assert table["session"].tolist() == [session, "02"]
+    _open(page, _subject_page(report, subject))         # and the first page still shows its mark
+    assert _controls(page, "qa-wrong", subject, session, component)[0].is_selected()
 
 
 def test_unmarking_removes_the_row(page, report):
-    fixture, _ = report
+    fixture, index = report
     subject, _, _, session, component = fixture.low_confidence_link
+    _open(page, _subject_page(report, subject))
     wrong = _controls(page, "qa-wrong", subject, session, component)[0]
     wrong.click()
-    assert _preview(page).count("\n") == 2
     wrong.click()
-    assert _preview(page) == HEADER + "\n"
     Select(_controls(page, "qa-move", subject, session, component)[-1]).select_by_value("2")
     assert wrong.is_selected() is False
+    _open(page, index)
     assert _preview(page) == f"{HEADER}\n{subject}\t{session}\t{component}\t2\t\n"
     page.find_element(By.ID, "clear-corrections").click()
     assert _preview(page) == HEADER + "\n"
+    _open(page, _subject_page(report, subject))
+    assert page.find_element(By.ID, "corrections-count-bar").text == "0"
+
+
+def _queue(driver) -> list[dict]:
+    return driver.execute_script("return window.LESION_GROWTH_QUEUE.items;")
+
+
+def _where(driver) -> tuple[str, str]:
+    return (driver.execute_script("return decodeURIComponent(location.pathname)").rsplit(
+        "/", 1)[-1], driver.execute_script("return location.hash;"))
+
+
+def _press(driver, key: str) -> None:
+    before = driver.current_url
+    driver.find_element(By.TAG_NAME, "body").send_keys(key)
+    deadline = time.monotonic() + 5
+    while time.monotonic() < deadline and driver.current_url == before:
+        time.sleep(0.05)
+
+
+def test_review_queue_walks_flagged_items_across_pages(page, report):
+    items = _queue(page)
+    assert len(items) >= 6
+    expected = [(h.split("#")[0].rsplit("/", 1)[-1], "#" + h.split("#")[1])
+                for h in (i["h"] for i in items)]
+    _press(page, "j")                               # from the index: the first item
+    assert _where(page) == expected[0]
+    for step in range(1, 4):                        # next, across pages
+        _press(page, "j")
+        assert _where(page) == expected[step]
+        assert page.find_element(By.ID, "queue-position").text == \
+            f"item {step + 1} of {len(items)}"
+        ident = expected[step][1][1:]
+        assert page.find_elements(By.ID, ident), ident   # the item's place is on the page
+    _press(page, "k")                               # previous
+    assert _where(page) == expected[2]
+    page.find_element(By.ID, "queue-next").click()  # the button does what the key does
+    time.sleep(0.3)
+    assert _where(page) == expected[3]
+
+
+def test_review_queue_filters_by_kind(page, report):
+    items = _queue(page)
+    merges = [i for i in items if i["k"] == "Merges"]
+    assert merges
+    Select(page.find_element(By.ID, "queue-kind")).select_by_value("Merges")
+    _press(page, "j")
+    assert _where(page)[1] == "#" + merges[0]["h"].split("#")[1]
+    assert page.find_element(By.ID, "queue-position").text == f"item 1 of {len(merges)}"
+    assert "Merges" in page.find_element(By.ID, "queue-current").text
+    # the filter holds on the other pages of the report
+    assert Select(page.find_element(By.ID, "queue-kind")).first_selected_option.text == "Merges"

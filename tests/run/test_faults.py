@@ -69,11 +69,12 @@ def environment() -> dict:
 
 def visible_files(root: Path) -> list[str]:
     """Output files a user or a script would pick up: hidden names (lock, cache, temporary
-    files) and report.html (a page, compared by presence only) left out."""
+    files) and the report (report.html and its report/ folder: pages, compared by presence
+    only) left out."""
     return sorted(str(p.relative_to(root)) for p in root.rglob("*")
                   if p.is_file() and not any(part.startswith(".") for part in
                                              p.relative_to(root).parts)
-                  and p.name != "report.html")
+                  and p.name != "report.html" and p.relative_to(root).parts[0] != "report")
 
 
 def same_file(ref: Path, got: Path) -> bool:

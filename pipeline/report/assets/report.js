@@ -1,26 +1,46 @@
-/* lesion-growth QA report: collect the reviewer's marks into corrections.tsv.
-   Plain JavaScript, no server, nothing sent anywhere. Columns: subject session component lesion
-   note. lesion is a lesion id (move the component there) or "new" (detach it into a lesion of its
-   own). Every control of one component (subject, session, component) shows the same choice. */
+/* lesion-growth QA report: the review queue and corrections.tsv, on every page of one report.
+   Plain JavaScript, no server, nothing sent anywhere. Columns of corrections.tsv: subject session
+   component lesion note. lesion is a lesion id (move the component there) or "new" (detach it into
+   a lesion of its own). Every control of one component shows the same choice. Marks are kept in
+   the browser's localStorage under the report's folder (the folder of report.html), so the pages
+   of one report share them and two reports never mix (file pages share one storage in Chromium
+   and Firefox); without storage they stay on the page until it is closed. The pages carry no id
+   of their own, so the same OUT gives the same files wherever it lies. */
 (function () {
   "use strict";
 
   var COLUMNS = ["subject", "session", "component", "lesion", "note"];
-  var state = {};
+  var body = document.body;
+  var root = body.dataset.root || "";
+  var queue = window.LESION_GROWTH_QUEUE || { items: [] };
+  var folder = location.pathname.slice(0, location.pathname.lastIndexOf("/") + 1);
+  if (!root) {
+    folder = folder.replace(/report\/$/, "");    /* a subject page: its report's folder */
+  }
+  var prefix = "lesion-growth:" + folder + ":";
+  var memory = {};
+
+  function load(name, fallback) {
+    try {
+      var text = window.localStorage.getItem(prefix + name);
+      return text ? JSON.parse(text) : fallback;
+    } catch (e) {
+      return memory[name] !== undefined ? memory[name] : fallback;
+    }
+  }
+
+  function store(name, value) {
+    memory[name] = value;
+    try {
+      window.localStorage.setItem(prefix + name, JSON.stringify(value));
+    } catch (e) { /* no storage here: the marks stay on this page */ }
+  }
+
+  /* ---- corrections ---- */
+  var marks = load("marks", {});   /* key -> [subject, session, component, lesion, note] */
 
   function keyOf(el) {
     return [el.dataset.subject, el.dataset.session, el.dataset.component].join("\u0000");
-  }
-
-  function entry(key) {
-    if (!state[key]) {
-      state[key] = { lesion: "", note: "" };
-    }
-    return state[key];
-  }
-
-  function controls() {
-    return document.querySelectorAll(".qa-wrong, .qa-move, .qa-note");
   }
 
   function clean(text) {
@@ -28,48 +48,34 @@
   }
 
   function rows() {
-    var seen = {};
-    var out = [];
-    controls().forEach(function (el) {
-      var key = keyOf(el);
-      if (seen[key]) {
-        return;
-      }
-      seen[key] = true;
-      var choice = state[key];
-      if (choice && choice.lesion !== "") {
-        out.push([el.dataset.subject, el.dataset.session, el.dataset.component,
-                  choice.lesion, clean(choice.note)].map(clean));
-      }
-    });
-    return out;
+    return Object.keys(marks).map(function (k) { return marks[k]; })
+      .filter(function (m) { return m[3] !== ""; })
+      .map(function (m) { return m.map(clean); });
   }
 
   function tsv() {
     return [COLUMNS].concat(rows()).map(function (r) { return r.join("\t"); }).join("\n") + "\n";
   }
 
-  function sync(key) {
-    var choice = entry(key);
+  function controls() {
+    return document.querySelectorAll(".qa-wrong, .qa-move, .qa-note");
+  }
+
+  function showAll() {
     controls().forEach(function (el) {
-      if (keyOf(el) !== key) {
-        return;
-      }
+      var m = marks[keyOf(el)] || ["", "", "", "", ""];
       if (el.classList.contains("qa-wrong")) {
-        el.checked = choice.lesion === "new";
+        el.checked = m[3] === "new";
       } else if (el.classList.contains("qa-move")) {
-        el.value = choice.lesion;
-      } else if (el.value !== choice.note) {
-        el.value = choice.note;
+        el.value = m[3];
+      } else if (el.value !== m[4] && document.activeElement !== el) {
+        el.value = m[4];
       }
       var row = el.closest("tr");
       if (row) {
-        row.classList.toggle("qa-marked", choice.lesion !== "");
+        row.classList.toggle("qa-marked", m[3] !== "");
       }
     });
-  }
-
-  function refresh() {
     var n = rows().length;
     var preview = document.getElementById("corrections-preview");
     if (preview) {
@@ -89,16 +95,21 @@
       return;
     }
     var key = keyOf(el);
-    var choice = entry(key);
+    var m = marks[key] || [el.dataset.subject, el.dataset.session, el.dataset.component, "", ""];
     if (el.classList.contains("qa-wrong")) {
-      choice.lesion = el.checked ? "new" : (choice.lesion === "new" ? "" : choice.lesion);
+      m[3] = el.checked ? "new" : (m[3] === "new" ? "" : m[3]);
     } else if (el.classList.contains("qa-move")) {
-      choice.lesion = el.value;
+      m[3] = el.value;
     } else if (el.classList.contains("qa-note")) {
-      choice.note = el.value;
+      m[4] = el.value;
     }
-    sync(key);
-    refresh();
+    if (m[3] === "" && m[4] === "") {
+      delete marks[key];
+    } else {
+      marks[key] = m;
+    }
+    store("marks", marks);
+    showAll();
   }
 
   function save() {
@@ -117,11 +128,110 @@
   }
 
   function clear() {
-    Object.keys(state).forEach(function (key) {
-      state[key] = { lesion: "", note: "" };
-      sync(key);
+    marks = {};
+    store("marks", marks);
+    showAll();
+  }
+
+  /* ---- review queue ---- */
+  var filter = load("filter", { kind: "", group: "" });
+
+  function items() {
+    return queue.items.filter(function (item) {
+      return (!filter.kind || item.k === filter.kind) && (!filter.group || item.g === filter.group);
     });
-    refresh();
+  }
+
+  function address(item) {
+    return new URL(root + item.h, location.href);
+  }
+
+  function position(list) {
+    for (var i = 0; i < list.length; i += 1) {
+      var url = address(list[i]);
+      if (url.pathname === location.pathname && url.hash === location.hash) {
+        return i;
+      }
+    }
+    var saved = load("position", -1);
+    return saved < list.length ? saved : -1;
+  }
+
+  function go(step) {
+    var list = items();
+    if (!list.length) {
+      return;
+    }
+    var i = position(list);
+    i = i < 0 ? (step > 0 ? 0 : list.length - 1) : (i + step + list.length) % list.length;
+    store("position", i);
+    var url = address(list[i]);
+    if (url.pathname === location.pathname) {
+      location.hash = url.hash;
+      showQueue();
+    } else {
+      location.href = url.href;
+    }
+  }
+
+  function fill(select, values, chosen) {
+    if (!select) {
+      return;
+    }
+    values.forEach(function (v) {
+      var option = document.createElement("option");
+      option.value = v;
+      option.textContent = v;
+      select.appendChild(option);
+    });
+    select.value = chosen;
+    select.addEventListener("change", function () {
+      filter = { kind: document.getElementById("queue-kind").value,
+                 group: document.getElementById("queue-group").value };
+      store("filter", filter);
+      store("position", -1);
+      showQueue();
+    });
+  }
+
+  function unique(field) {
+    var seen = {};
+    queue.items.forEach(function (item) {
+      if (item[field]) {
+        seen[item[field]] = true;
+      }
+    });
+    return Object.keys(seen);
+  }
+
+  function showQueue() {
+    var list = items();
+    var i = position(list);
+    var where = document.getElementById("queue-position");
+    var what = document.getElementById("queue-current");
+    if (where) {
+      where.textContent = !list.length ? "no flagged items" + (queue.items.length ? " in this filter" : "")
+        : (i < 0 ? list.length + " flagged items: press next to start"
+          : "item " + (i + 1) + " of " + list.length);
+    }
+    if (what) {
+      what.textContent = i < 0 ? "" : list[i].k + " · " + list[i].s + ": " + list[i].t;
+    }
+  }
+
+  function onKey(event) {
+    var tag = (event.target.tagName || "").toLowerCase();
+    if (tag === "input" || tag === "select" || tag === "textarea" || event.altKey ||
+        event.ctrlKey || event.metaKey) {
+      return;
+    }
+    if (event.key === "j" || event.key === "n") {
+      go(1);
+      event.preventDefault();
+    } else if (event.key === "k" || event.key === "p") {
+      go(-1);
+      event.preventDefault();
+    }
   }
 
   function init() {
@@ -131,15 +241,26 @@
         onChange(event);
       }
     });
-    var saveButton = document.getElementById("save-corrections");
-    if (saveButton) {
-      saveButton.addEventListener("click", save);
-    }
-    var clearButton = document.getElementById("clear-corrections");
-    if (clearButton) {
-      clearButton.addEventListener("click", clear);
-    }
-    refresh();
+    document.addEventListener("keydown", onKey);
+    window.addEventListener("storage", function (event) {
+      if (event.key === prefix + "marks") {
+        marks = load("marks", {});
+        showAll();
+      }
+    });
+    window.addEventListener("hashchange", showQueue);
+    [["save-corrections", save], ["clear-corrections", clear],
+     ["queue-next", function () { go(1); }], ["queue-prev", function () { go(-1); }]]
+      .forEach(function (pair) {
+        var el = document.getElementById(pair[0]);
+        if (el) {
+          el.addEventListener("click", pair[1]);
+        }
+      });
+    fill(document.getElementById("queue-kind"), unique("k"), filter.kind);
+    fill(document.getElementById("queue-group"), unique("g"), filter.group);
+    showAll();
+    showQueue();
   }
 
   if (document.readyState === "loading") {
