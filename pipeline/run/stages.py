@@ -206,7 +206,7 @@ def _event_row(row: pd.Series, kind: str, manifest_kind: str, origins: dict[str,
 
 def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> None:
     """Stage 3 on longitudinal.tsv: fits.tsv and group_fits.tsv."""
-    from pipeline.api import fit_growth
+    from pipeline.growth.stage import fit_growth
 
     fits, group_fits, unfitted = fit_growth(read_table(out / "longitudinal.tsv"), events,
                                             config=config)
