@@ -18,7 +18,7 @@ import pandas as pd
 
 from pipeline.io.atomic import atomic_path
 from pipeline.report import png, svg
-from pipeline.io.nifti import track_path
+from pipeline.io.names import track_path
 from pipeline.report.data import (ReportInputs, ScanCache, component_lesions, find_image,
                                   lesion_centres, records)
 from pipeline.report.figures import axial_crop
