@@ -160,14 +160,12 @@ class ReportSettings:
     """The QA report."""
 
     max_lesion_panels: int = 0        # lesions shown with slices, flagged first (0 = every lesion)
-    low_overlap: float = 0.2          # Dice (0..1); a link with a lower overlap is flagged
     slice_window_mm: float = 40.0     # mm; smallest side of the square shown around a lesion
     figure_dpi: int = 80              # dots per inch of the slice panels (about 1.9 inch each)
     panels_per_row: int = 6           # sessions per row in a lesion's slice figure
 
     def __post_init__(self) -> None:
         _require(self.max_lesion_panels >= 0, "max_lesion_panels must be >= 0")
-        _require(0.0 <= self.low_overlap <= 1.0, "low_overlap must be between 0 and 1")
         _require(self.slice_window_mm > 0, "slice_window_mm must be > 0")
         _require(20 <= self.figure_dpi <= 300, "figure_dpi must be between 20 and 300")
         _require(self.panels_per_row >= 1, "panels_per_row must be >= 1")

@@ -252,6 +252,9 @@ def build_report_folder(root: Path) -> ReportFixture:
     write_table(lesions, out / "lesions.tsv")
     write_table(pd.DataFrame(masks1 + masks2 + masks3), out / "masks.tsv")
     write_table(_matches(components, {("P01", 2): 1}), out / "matches.tsv")
+    write_table(pd.DataFrame([{"subject": r["subject"], "session": r["session"],
+                               "component": r["component"], "lesion": r["_lesion"]}
+                              for r in components]), out / "lesion_components.tsv")
     longitudinal = _longitudinal(components)
     write_table(longitudinal, out / "longitudinal.tsv")
     write_table(_fits(longitudinal), out / "fits.tsv")

@@ -325,20 +325,27 @@ def find_image(inputs: ReportInputs, given: str) -> Path | None:
     return None
 
 
-def component_lesions(lesions: pd.DataFrame, cache: ScanCache,
-                      matches: pd.DataFrame | None = None) -> dict[tuple[str, int], int]:
-    """Map (session, component) of one subject to its lesion id.
+def component_lesions(assignment: pd.DataFrame, matches: pd.DataFrame | None = None
+                      ) -> dict[tuple[str, int], int]:
+    """Map (session, component) of one subject to its lesion id, as stage 2 assigned it.
 
-    In order of preference: a ``lesion`` column of lesions.tsv; the ``lesion_from`` /
-    ``lesion_to`` columns of matches.tsv; otherwise the track id that covers most voxels inside
-    the component's bounding box in ``tracks/``. Components whose lesion cannot be told are
-    left out.
+    ``assignment`` holds the subject's rows of lesion_components.tsv (stage 2's component ->
+    lesion table). An OUT written before that table existed has the ids only on the links:
+    the ``lesion_from`` / ``lesion_to`` columns of matches.tsv give every linked component's
+    lesion (a component seen at one session only, with no link, is then left out).
+
+    Examples
+    --------
+    >>> rows = pd.DataFrame({"session": ["1", "2"], "component": [1, 1], "lesion": [1, 1]})
+    >>> component_lesions(rows)
+    {('1', 1): 1, ('2', 1): 1}
     """
     mapping: dict[tuple[str, int], int] = {}
-    if "lesion" in lesions:
-        for row in records(lesions):
+    if len(assignment) and {"session", "component", "lesion"} <= set(assignment.columns):
+        for row in records(assignment):
             if math.isfinite(as_number(row["lesion"])):
                 mapping[(str(row["session"]), int(row["component"]))] = int(row["lesion"])
+        return mapping
     if matches is not None and len(matches):
         for end in ("from", "to"):
             if f"lesion_{end}" not in matches:
@@ -346,20 +353,8 @@ def component_lesions(lesions: pd.DataFrame, cache: ScanCache,
             for row in records(matches):
                 lesion = as_number(row[f"lesion_{end}"])
                 key = (str(row[f"session_{end}"]), int(row[f"component_{end}"]))
-                if math.isfinite(lesion) and key not in mapping:
-                    mapping[key] = int(lesion)
-    boxes = [f"bbox_{a}_{m}" for a in "ijk" for m in ("min", "max")]
-    for row in records(lesions):
-        key = (str(row["session"]), int(row["component"]))
-        box = [as_number(row.get(b)) for b in boxes]
-        scan = None if key in mapping else cache.track(key[0])
-        if scan is None or not all(math.isfinite(b) for b in box):
-            continue
-        lo, hi = [int(b) for b in box[0::2]], [int(b) + 1 for b in box[1::2]]
-        values = scan.stored[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]]
-        values = values[values > 0].astype(np.int64)
-        if values.size:
-            mapping[key] = int(np.bincount(values).argmax())
+                if math.isfinite(lesion):
+                    mapping.setdefault(key, int(lesion))
     return mapping
 
 

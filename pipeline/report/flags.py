@@ -18,7 +18,6 @@ from pipeline.settings import ReportSettings
 #: Order of the kinds of flagged items on the page.
 FLAG_KINDS = ("Failed inputs", "Low-confidence links", "Merges", "Fits without interval or "
               "with notes", "Touching the scan border", "Not measurable (RANO-BM)")
-_LINK_FLAG_COLUMNS = ("flag", "flags", "review", "low_confidence")
 
 
 def failure_flags(inputs: ReportInputs) -> list[Flag]:
@@ -49,24 +48,17 @@ def subject_links(matches: pd.DataFrame, mapping: dict, subject: str,
            settings: ReportSettings) -> pd.DataFrame:
     """matches.tsv rows of one subject with lesion ids, a flag, why, and a page anchor.
 
-    A link is flagged when matches.tsv marks it (``review`` or ``flag`` columns, reason from
-    ``review_reason``); a matches.tsv without such columns falls back to overlap below
-    ``settings.low_overlap``.
+    A link is flagged when stage 2 flagged it for review (matches.tsv ``review``, the reason in
+    ``review_reason``: ambiguous, small overlap, large jump, separated, ...).
     """
     if matches.empty:
         return pd.DataFrame()
-    marks = [c for c in _LINK_FLAG_COLUMNS if c in matches]
     rows = []
     for row in records(matches):
         key_from = (str(row["session_from"]), int(row["component_from"]))
         key_to = (str(row["session_to"]), int(row["component_to"]))
-        if marks:
-            reasons = [str(row.get("review_reason") or "") or f"marked in matches.tsv ({c})"
-                       for c in marks if _marked(row[c])][:1]
-        else:
-            overlap = as_number(row.get("overlap"))
-            reasons = ([f"overlap {overlap:.2f} below {settings.low_overlap:g}"]
-                       if math.isfinite(overlap) and overlap < settings.low_overlap else [])
+        reasons = [str(row.get("review_reason") or "") or "flagged by stage 2"] \
+            if _marked(row.get("review", False)) else []
         rows.append({**row, "lesion_from": mapping.get(key_from, "?"),
                      "lesion_to": mapping.get(key_to, "?"), "flagged": bool(reasons),
                      "why": "; ".join(reasons + (["corrected by QA"] if is_true(

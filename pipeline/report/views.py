@@ -114,10 +114,10 @@ def subject_view(inputs: ReportInputs, subject: str, settings: ReportSettings) -
     >>> view.page, view.lesions, view.timeline is None
     ('subject-P1.html', (), True)
     """
-    cache = ScanCache(inputs, subject)
     lesions = inputs.of_subject("lesions.tsv", subject)
     matches = inputs.of_subject("matches.tsv", subject)
-    mapping = component_lesions(lesions, cache, matches) if len(lesions) else {}
+    mapping = component_lesions(inputs.of_subject("lesion_components.tsv", subject), matches) \
+        if len(lesions) else {}
     longitudinal = inputs.of_subject("longitudinal.tsv", subject)
     fits = inputs.of_subject("fits.tsv", subject)
     events = inputs.of_subject("events.tsv", subject)

@@ -76,7 +76,7 @@ def test_lesion_centres_from_the_table_match_the_track_images(fixture):
     for subject in ("P01", "P02"):
         cache = ScanCache(inputs, subject)
         lesions = inputs.of_subject("lesions.tsv", subject)
-        mapping = component_lesions(lesions, cache, inputs.of_subject("matches.tsv", subject))
+        mapping = component_lesions(inputs.of_subject("lesion_components.tsv", subject))
         sessions = sorted(lesions["session"].unique())
         for lesion in sorted(set(mapping.values())):
             own = lesions[[mapping.get((str(s), int(c))) == lesion
