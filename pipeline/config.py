@@ -15,7 +15,8 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.errors import ConfigError
-from pipeline.settings import FitSettings, MatchSettings, ReportSettings, VolumeSettings
+from pipeline.settings import (FitSettings, MatchSettings, PopulationSettings, ReportSettings,
+                               VolumeSettings)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -26,6 +27,7 @@ class Config:
     matching: MatchSettings = MatchSettings()
     fitting: FitSettings = FitSettings()
     report: ReportSettings = ReportSettings()
+    population: PopulationSettings = PopulationSettings()
 
     def as_dict(self) -> dict[str, Any]:
         """Plain nested dict (tuples as lists), as written to ``provenance.json``."""

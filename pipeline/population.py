@@ -1,0 +1,357 @@
+"""Population (nonlinear mixed-effects) growth model: every lesion borrows strength from its cohort.
+
+For every (group, phase) and law, each lesion phase's parameters (for the power law ln V0, the
+initial specific growth rate k and beta) are drawn from a population normal distribution with mean
+``mu`` and between-lesion covariance ``Omega``; the residual error of ln volume ``sigma`` is
+shared by the cohort. The model is fitted by maximum marginal likelihood with the Laplace
+(first-order conditional, FOCE) approximation (:mod:`pipeline.population_core`). Every group has
+its own mean, covariance and residual error (the group is a fixed effect on the mean; groups are
+fitted apart, so they also differ in spread). Lesions of one subject are not independent: the
+intervals of population means and group contrasts use a subject-cluster-robust (sandwich)
+variance with a t(G - 1) reference (G subjects).
+
+- Lesion phases with at least 2 fitted sessions enter (volumes as the per-lesion fits use them:
+  :func:`pipeline.phases.assign_phases`, ``in_fit`` rows with a positive volume).
+- Individual estimates are conditional modes (empirical Bayes) with an interval from the
+  conditional posterior ``N(phi_i*, C_i)`` widened by the uncertainty of ``mu``
+  (``C_i + G_i V_mu G_i'`` with ``G_i = C_i Omega^-1`` = d phi_i* / d mu);
+  ``shrinkage`` = posterior variance / population variance of the law's shape parameter.
+- Forecasts: ln V at the forecast day with the delta-method variance plus sigma^2. When the
+  individual curve is not defined there (a power law whose singularity falls before the forecast
+  day, or that shrinks to 0), the forecast is the median of 4000 posterior predictive draws
+  (draws that blow up count as +infinity); the upper end is n/a when more than the tail share
+  of the draws blow up, and the note says how many did. A forecast never vanishes silently.
+- Law choice: AIC of the marginal likelihood over the cohort (same lesions and volumes for every
+  law); ``best`` marks the lowest.
+
+Research use only: see ``pipeline.DISCLAIMER``.
+
+References
+----------
+Lindstrom MJ, Bates DM. Biometrics 1990;46:673-687 (nonlinear mixed effects, FOCE).
+Liang KY, Zeger SL. Biometrika 1986;73:13-22 (cluster-robust variance).
+Benzekry S et al. PLoS Comput Biol 2014;10:e1003800 (growth laws, prediction).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from pipeline.growth_core import jacobian
+from pipeline.laws import LAWS, Law
+from pipeline.population_columns import BACKTEST, CONTRASTS, FITS, LESIONS
+from pipeline.population_core import Cohort, PopulationFit, fit_population
+from pipeline.settings import FitSettings, PopulationSettings
+
+__all__ = ["population_tables", "lesion_series", "fit_cohort", "COLUMNS"]
+
+COLUMNS = {"population_fits.tsv": FITS, "population_lesions.tsv": LESIONS,
+           "group_contrasts.tsv": CONTRASTS, "backtest.tsv": BACKTEST}
+KEYS = ["group", "phase", "subject", "lesion"]
+_DRAWS = 4000
+_SHAPE = {"power": 2, "exponential": 1, "surface": 1, "gompertz": 2, "logistic": 2}
+
+
+def lesion_series(phased: pd.DataFrame) -> pd.DataFrame:
+    """The fitted sessions of every lesion phase with at least 2 of them, sorted.
+
+    Parameters
+    ----------
+    phased : pandas.DataFrame
+        Output of :func:`pipeline.phases.assign_phases` (``group`` optional).
+
+    Returns
+    -------
+    pandas.DataFrame
+        group ('all' when empty), phase, subject, lesion, day, log_v, n_points.
+
+    Examples
+    --------
+    >>> phased = pd.DataFrame({"subject": "01", "lesion": [1, 1, 2], "phase": "untreated",
+    ...                        "day": [0.0, 30, 0], "volume_mm3": [10.0, 20, 5], "in_fit": True})
+    >>> lesion_series(phased)[["lesion", "n_points"]].values.tolist()
+    [[1, 2], [1, 2]]
+    """
+    volume = pd.to_numeric(phased["volume_mm3"], errors="coerce")
+    keep = phased["in_fit"].astype(bool) & (volume > 0) & np.isfinite(volume)
+    rows = phased.loc[keep, ["subject", "lesion", "phase", "day"]].copy()
+    group = phased.loc[keep, "group"] if "group" in phased else pd.Series("", rows.index)
+    rows["group"] = group.fillna("").astype(str).str.strip().replace("", "all")
+    rows["subject"] = rows["subject"].astype(str)
+    rows["phase"] = rows["phase"].astype(str)
+    rows["day"] = pd.to_numeric(rows["day"], errors="coerce").astype(float)
+    rows["log_v"] = np.log(volume[keep].astype(float))
+    rows = rows.sort_values(KEYS + ["day"], kind="stable")
+    rows["n_points"] = rows.groupby(KEYS, sort=False)["day"].transform("size")
+    return rows[rows["n_points"] >= 2].reset_index(drop=True)[KEYS + ["day", "log_v",
+                                                                       "n_points"]]
+
+
+def _arrays(rows: pd.DataFrame) -> dict:
+    """Padded arrays of one (group, phase)."""
+    key = rows.groupby(["subject", "lesion"], sort=False).ngroup().to_numpy()
+    pos = rows.groupby(["subject", "lesion"], sort=False).cumcount().to_numpy()
+    m, n = key.max() + 1, pos.max() + 1
+    day, y, w = np.zeros((m, n)), np.zeros((m, n)), np.zeros((m, n))
+    day[key, pos], y[key, pos], w[key, pos] = rows["day"], rows["log_v"], 1.0
+    first = day[:, 0].copy()
+    t = np.where(w > 0, day - first[:, None], 0.0)
+    ids = rows.drop_duplicates(["subject", "lesion"])
+    cluster = pd.factorize(ids["subject"])[0]
+    return {"t": t, "y": y, "w": w, "cluster": cluster, "day_start": first,
+            "day_end": first + t.max(1), "ids": ids[["subject", "lesion"]].reset_index(drop=True)}
+
+
+def _starts(law: Law, a: dict) -> np.ndarray:
+    """Per-lesion start values from the weighted log-linear regression."""
+    t, y, w = a["t"], a["y"], a["w"]
+    nw = w.sum(1)
+    tm, ym = (w * t).sum(1) / nw, (w * y).sum(1) / nw
+    var = (w * (t - tm[:, None]) ** 2).sum(1)
+    slope = np.where(var > 0, (w * (t - tm[:, None]) * (y - ym[:, None])).sum(1)
+                     / np.where(var > 0, var, 1.0), 0.0)
+    intercept = ym - slope * tm
+    y_high = np.where(w > 0, y, -np.inf).max(1)
+    starts = law.starts(intercept, slope, t.max(1), y_high)
+    return starts[1] if len(starts) > 1 else starts[0]
+
+
+def fit_cohort(law: Law, a: dict, *, settings: FitSettings = FitSettings(),
+               covariance: str = "full") -> tuple[PopulationFit, Cohort]:
+    """Population fit of one law to the arrays of one (group, phase) (see :func:`_arrays`)."""
+    y_obs = np.where(a["w"] > 0, a["y"], np.nan)
+    lower, upper = law.bounds(np.nanmin(y_obs, 1), np.nanmax(y_obs, 1), settings)
+    cohort = Cohort(a["t"], a["y"], a["w"], a["cluster"], lower, upper)
+    fit = fit_population(law, cohort, _starts(law, a), diagonal=covariance == "diagonal")
+    return fit, cohort
+
+
+def _mu_cov(fit: PopulationFit) -> np.ndarray:
+    cov = fit.mu_cov
+    return cov if np.isfinite(cov).all() else fit.mu_cov_model
+
+
+def individual_cov(fit: PopulationFit) -> np.ndarray:
+    """Conditional covariances widened by the uncertainty of mu: C + G V_mu G'."""
+    G = fit.cond_cov @ np.linalg.inv(fit.omega)
+    return fit.cond_cov + G @ _mu_cov(fit) @ np.swapaxes(G, 1, 2)
+
+
+def predict(law: Law, fit: PopulationFit, cov: np.ndarray, t_new: np.ndarray, *,
+            confidence: float, seed: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray,
+                                                       np.ndarray]:
+    """ln V at ``t_new`` (M,) per lesion: (centre, low, high, share of draws that blow up).
+
+    Delta method with the residual variance where the individual curve is defined at ``t_new``;
+    posterior predictive draws elsewhere (see module docstring).
+    """
+    z = stats.norm.ppf(0.5 * (1.0 + confidence))
+    tn = np.asarray(t_new, float)[:, None]
+    with np.errstate(all="ignore"):
+        centre = law.log_volume(tn, fit.modes)[:, 0]
+        g = jacobian(law.log_volume, tn, fit.modes)[:, 0, :]
+    var = np.einsum("mp,mpq,mq->m", g, cov, g) + fit.sigma ** 2
+    half = z * np.sqrt(var)
+    low, high, blown = centre - half, centre + half, np.zeros(len(centre))
+    bad = np.flatnonzero(~np.isfinite(centre))
+    if len(bad):
+        rng = np.random.default_rng(seed)
+        chol = np.linalg.cholesky(cov[bad] + 1e-12 * np.eye(cov.shape[-1]))
+        draws = fit.modes[bad, None, :] + np.einsum(
+            "mpq,mdq->mdp", chol, rng.standard_normal((len(bad), _DRAWS, cov.shape[-1])))
+        with np.errstate(all="ignore"):
+            lv = law.log_volume(np.repeat(tn[bad], _DRAWS, 0).reshape(len(bad), _DRAWS, 1),
+                                draws)[..., 0]
+        blow = ~np.isfinite(lv) & (draws[..., 2] > 1.0) if law.name == "power" else \
+            np.zeros(lv.shape, bool)                   # only a power law with beta > 1 blows up
+        lv = np.where(blow, np.inf, np.where(np.isfinite(lv), lv, -np.inf))
+        lv = lv + fit.sigma * rng.standard_normal(lv.shape)
+        tail = 0.5 * (1.0 - confidence)
+        q = np.quantile(lv, [tail, 0.5, 1.0 - tail], axis=1)
+        low[bad], centre[bad], high[bad] = q[0], q[1], q[2]
+        blown[bad] = blow.mean(1)
+    return centre, low, high, blown
+
+
+def _interval(mean: float, var: float, df: int, confidence: float) -> tuple[float, float]:
+    if not (np.isfinite(var) and df >= 1):
+        return np.nan, np.nan
+    half = stats.t.ppf(0.5 * (1.0 + confidence), df) * np.sqrt(max(var, 0.0))
+    return mean - half, mean + half
+
+
+def _fit_row(law: Law, fit: PopulationFit, cohort: Cohort, covariance: str,
+             confidence: float) -> dict:
+    p = law.n_params
+    n_cov = p if covariance == "diagonal" else p * (p + 1) // 2
+    n_params = p + n_cov + 1
+    cov, df = _mu_cov(fit), fit.n_clusters - 1
+    row = {"n_lesions": len(fit.modes), "n_subjects": fit.n_clusters,
+           "n_points": int(cohort.w.sum()), "sigma_log": fit.sigma,
+           "log_likelihood": fit.log_likelihood, "aic": -2.0 * fit.log_likelihood + 2 * n_params,
+           "method": "is-em", "log_v0_mean": fit.mu[0], "k_mean_per_day": fit.mu[1],
+           "k_sd_per_day": np.sqrt(fit.omega[1, 1]), "n_params": n_params,
+           "covariance": covariance, "converged": fit.converged, "iterations": fit.iterations,
+           "parameters": " ".join(law.params), "confidence": confidence,
+           "omega": " ".join(f"{v:.6g}" for v in fit.omega.ravel())}
+    row["k_mean_ci_low"], row["k_mean_ci_high"] = _interval(fit.mu[1], cov[1, 1], df, confidence)
+    if law.name == "power":
+        row["beta_mean"], row["beta_sd"] = fit.mu[2], np.sqrt(fit.omega[2, 2])
+        row["beta_mean_ci_low"], row["beta_mean_ci_high"] = _interval(fit.mu[2], cov[2, 2], df,
+                                                                      confidence)
+    elif law.beta is not None:
+        row.update(beta_mean=law.beta, beta_sd=0.0, beta_mean_ci_low=law.beta,
+                   beta_mean_ci_high=law.beta)
+    notes = []
+    if not fit.converged:
+        notes.append(f"not converged after {fit.iterations} cycles")
+    m = fit.cond_modes
+    at_bound = (np.isclose(m, cohort.lower) | np.isclose(m, cohort.upper))[:, 1:]
+    if at_bound.any():
+        notes.append(f"{int(at_bound.any(1).sum())} lesion(s) with a parameter at its bound")
+    if fit.n_clusters < 2:
+        notes.append("one subject: no interval for the population means")
+    elif fit.n_clusters < 10:
+        notes.append(f"only {fit.n_clusters} subjects: the robust intervals are rough")
+    row["note"] = "; ".join(notes)
+    return row
+
+
+def _lesion_rows(law: Law, fit: PopulationFit, a: dict, settings: FitSettings) -> pd.DataFrame:
+    cov = individual_cov(fit)
+    z = stats.norm.ppf(0.5 * (1.0 + settings.confidence))
+    t_f = a["t"].max(1) + settings.forecast_days
+    centre, low, high, blown = predict(law, fit, cov, t_f, confidence=settings.confidence,
+                                       seed=settings.seed)
+    j = _SHAPE[law.name]
+    shrink = np.clip(fit.cond_cov[:, j, j] / fit.omega[j, j], 0.0, 1.0)
+    n_points = a["w"].sum(1).astype(int)
+    out = a["ids"].copy()
+    out["n_points"] = n_points
+    out["day_start"], out["day_end"] = a["day_start"], a["day_end"]
+    out["v0_mm3"], out["k_per_day"] = np.exp(fit.modes[:, 0]), law.initial_rate(fit.modes)
+    nan = np.full(len(out), np.nan)
+    out["beta"], out["beta_ci_low"], out["beta_ci_high"] = nan, nan, nan
+    if law.name == "power":
+        sd = np.sqrt(cov[:, 2, 2])
+        out["beta"], out["beta_ci_low"], out["beta_ci_high"] = (
+            fit.modes[:, 2], fit.modes[:, 2] - z * sd, fit.modes[:, 2] + z * sd)
+    elif law.beta is not None:
+        out["beta"] = out["beta_ci_low"] = out["beta_ci_high"] = law.beta
+    out["shrinkage"] = shrink
+    out["forecast_day"] = a["day_end"] + settings.forecast_days
+    out["forecast_mm3"], out["forecast_low_mm3"] = np.exp(centre), np.exp(low)
+    out["forecast_high_mm3"] = np.where(np.isfinite(high), np.exp(high), np.nan)
+    out["note"] = [_lesion_note(law, n, s, b) for n, s, b in zip(n_points, shrink, blown)]
+    return out
+
+
+def _lesion_note(law: Law, n: int, shrink: float, blown: float) -> str:
+    notes = []
+    what = "beta" if law.name == "power" else law.params[_SHAPE[law.name]]
+    if n == 2 and law.n_params > 2:
+        notes.append(f"2 sessions: {what} comes from the population (shrinkage {shrink:.2f})")
+    elif shrink > 0.8:
+        notes.append(f"{what} mostly from the population (shrinkage {shrink:.2f})")
+    if blown > 0:
+        notes.append(f"the individual curve is not defined at the forecast day; forecast from "
+                     f"posterior draws, {100 * blown:.1f} % of which blow up before it")
+    return "; ".join(notes)
+
+
+def _contrasts(fits: list[tuple[dict, PopulationFit]], confidence: float) -> list[dict]:
+    """Wald contrasts of beta and k between every pair of groups of a (phase, law)."""
+    rows = []
+    for i, (ra, fa) in enumerate(fits):
+        for rb, fb in fits[i + 1:]:
+            row = {"group_a": ra["group"], "group_b": rb["group"], "phase": ra["phase"],
+                   "model": ra["model"]}
+            df = fa.n_clusters + fb.n_clusters - 2
+            for j, name, key in ((2, "beta_diff", "p_value"), (1, "k_diff_per_day", "k_p_value")):
+                if j == 2 and ra["model"] != "power":
+                    continue
+                diff = fa.mu[j] - fb.mu[j]
+                var = _mu_cov(fa)[j, j] + _mu_cov(fb)[j, j]
+                lo, hi = _interval(diff, var, df, confidence)
+                stem = "beta_diff" if j == 2 else "k_diff"
+                row[name], row[f"{stem}_ci_low"], row[f"{stem}_ci_high"] = diff, lo, hi
+                row[key] = (2 * stats.t.sf(abs(diff) / np.sqrt(var), df)
+                            if df >= 1 and var > 0 else np.nan)
+            rows.append(row)
+    return rows
+
+
+def _frame(rows: list[dict] | pd.DataFrame, columns: dict) -> pd.DataFrame:
+    table = pd.DataFrame(rows)
+    for name in columns:
+        if name not in table:
+            table[name] = np.nan
+    return table[list(columns)]
+
+
+def population_tables(phased: pd.DataFrame, *, settings: FitSettings = FitSettings(),
+                      population: PopulationSettings = PopulationSettings()
+                      ) -> dict[str, pd.DataFrame]:
+    """Population fits, individual estimates, group contrasts and the backtest.
+
+    Parameters
+    ----------
+    phased : pandas.DataFrame
+        Output of :func:`pipeline.phases.assign_phases` (with ``group`` when there are groups).
+    settings : FitSettings
+        Bounds, confidence level, forecast horizon and seed (shared with the per-lesion fits).
+    population : PopulationSettings
+        Laws, covariance form, backtest on or off.
+
+    Returns
+    -------
+    dict of pandas.DataFrame
+        Keyed by file name (``population_fits.tsv``, ``population_lesions.tsv``,
+        ``group_contrasts.tsv``, ``backtest.tsv``); columns as in :data:`COLUMNS`.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(3)
+    >>> days = np.array([0.0, 40, 80, 120])
+    >>> rows = [{"subject": f"s{i // 2}", "lesion": i % 2 + 1, "phase": "untreated", "day": d,
+    ...          "volume_mm3": 100 * np.exp((0.01 + 0.002 * rng.normal()) * d + 0.05 * e),
+    ...          "in_fit": True} for i in range(30) for d, e in zip(days, rng.normal(size=4))]
+    >>> out = population_tables(pd.DataFrame(rows),
+    ...                         population=PopulationSettings(models=("exponential",)))
+    >>> fit = out["population_fits.tsv"].iloc[0]
+    >>> int(fit.n_lesions), int(fit.n_subjects), bool(fit.best), float(round(fit.k_mean_per_day, 2))
+    (30, 15, True, 0.01)
+    """
+    series = lesion_series(phased)
+    fit_rows, lesion_parts, contrast_rows = [], [], []
+    by_phase_law: dict[tuple[str, str], list] = {}
+    for (group, phase), rows in series.groupby(["group", "phase"], sort=True):
+        a = _arrays(rows)
+        for name in population.models:
+            law = LAWS[name]
+            fit, cohort = fit_cohort(law, a, settings=settings, covariance=population.covariance)
+            row = {"group": group, "phase": phase, "model": name,
+                   **_fit_row(law, fit, cohort, population.covariance, settings.confidence)}
+            fit_rows.append(row)
+            by_phase_law.setdefault((phase, name), []).append((row, fit))
+            lesion_parts.append(_lesion_rows(law, fit, a, settings).assign(
+                group=group, phase=phase, model=name))
+    for (_, _), fits in sorted(by_phase_law.items()):
+        contrast_rows += _contrasts(fits, settings.confidence)
+    fits = _frame(fit_rows, FITS)
+    if len(fits):
+        low = fits.groupby(["group", "phase"])["aic"].transform("min")
+        fits["best"] = np.isclose(fits["aic"], low, rtol=0, atol=1e-9)
+    lesions = _frame(pd.concat(lesion_parts, ignore_index=True) if lesion_parts else [],
+                     LESIONS)
+    out = {"population_fits.tsv": fits, "population_lesions.tsv": lesions,
+           "group_contrasts.tsv": _frame(contrast_rows, CONTRASTS)}
+    if population.backtest:
+        from pipeline.population_backtest import backtest
+
+        out["backtest.tsv"] = _frame(backtest(series, settings=settings,
+                                              population=population), BACKTEST)
+    else:
+        out["backtest.tsv"] = _frame([], BACKTEST)
+    return out
