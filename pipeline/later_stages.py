@@ -199,11 +199,32 @@ def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> No
         doc = getattr(module, "COLUMNS", None)
         if isinstance(doc, dict):
             write_sidecar(out / f"{name}.tsv", doc)
+    if config.population.enabled:
+        _write_population(out, read_table(out / "longitudinal.tsv"), events, config)
+    else:                                   # no stale population tables from an earlier run
+        for name in ("population_fits", "population_lesions", "group_contrasts", "backtest"):
+            for path in (out / f"{name}.tsv", out / f"{name}.json"):
+                path.unlink(missing_ok=True)
     if events is not None:
         shown = events.assign(day=events["day_given"], lesion=events["lesion"].astype("Int64"))
         write_table(shown[["subject", "day", "event", "lesion"]], out / "events.tsv",
                     columns=("subject", "day", "event", "lesion"))
         write_sidecar(out / "events.tsv", EVENT_COLUMNS)
+
+
+def _write_population(out: Path, longitudinal: pd.DataFrame, events: pd.DataFrame | None,
+                      config: Config) -> None:
+    """population_fits.tsv, population_lesions.tsv, group_contrasts.tsv, backtest.tsv."""
+    from pipeline import population
+
+    try:
+        tables = population.from_longitudinal(longitudinal, events, config=config)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        say(f"warning: population model not fitted: {type(exc).__name__}: {exc}")
+        return
+    for name, table in tables.items():
+        write_table(table, out / name, columns=tuple(population.COLUMNS[name]))
+        write_sidecar(out / name, population.COLUMNS[name])
 
 
 def load_provenance(out: Path) -> dict:

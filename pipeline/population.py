@@ -44,12 +44,13 @@ from pipeline.population_columns import BACKTEST, CONTRASTS, FITS, LESIONS
 from pipeline.population_core import Cohort, PopulationFit, fit_population
 from pipeline.settings import FitSettings, PopulationSettings
 
-__all__ = ["population_tables", "lesion_series", "fit_cohort", "COLUMNS"]
+__all__ = ["population_tables", "from_longitudinal", "lesion_series", "fit_cohort", "COLUMNS"]
 
 COLUMNS = {"population_fits.tsv": FITS, "population_lesions.tsv": LESIONS,
            "group_contrasts.tsv": CONTRASTS, "backtest.tsv": BACKTEST}
 KEYS = ["group", "phase", "subject", "lesion"]
 _DRAWS = 4000
+_FAILURES = (ValueError, FloatingPointError, np.linalg.LinAlgError)
 _SHAPE = {"power": 2, "exponential": 1, "surface": 1, "gompertz": 2, "logistic": 2}
 
 
@@ -168,7 +169,7 @@ def predict(law: Law, fit: PopulationFit, cov: np.ndarray, t_new: np.ndarray, *,
         lv = np.where(blow, np.inf, np.where(np.isfinite(lv), lv, -np.inf))
         lv = lv + fit.sigma * rng.standard_normal(lv.shape)
         tail = 0.5 * (1.0 - confidence)
-        q = np.quantile(lv, [tail, 0.5, 1.0 - tail], axis=1)
+        q = np.quantile(lv, [tail, 0.5, 1.0 - tail], axis=1, method="inverted_cdf")
         low[bad], centre[bad], high[bad] = q[0], q[1], q[2]
         blown[bad] = blow.mean(1)
     return centre, low, high, blown
@@ -330,9 +331,16 @@ def population_tables(phased: pd.DataFrame, *, settings: FitSettings = FitSettin
         a = _arrays(rows)
         for name in population.models:
             law = LAWS[name]
-            fit, cohort = fit_cohort(law, a, settings=settings, covariance=population.covariance)
-            row = {"group": group, "phase": phase, "model": name,
-                   **_fit_row(law, fit, cohort, population.covariance, settings.confidence)}
+            row = {"group": group, "phase": phase, "model": name}
+            try:
+                fit, cohort = fit_cohort(law, a, settings=settings,
+                                         covariance=population.covariance)
+                row.update(_fit_row(law, fit, cohort, population.covariance,
+                                    settings.confidence))
+            except _FAILURES as exc:        # one law failing never stops the others
+                fit_rows.append({**row, "n_lesions": len(a["t"]), "method": "is-em",
+                                 "note": f"failed: {type(exc).__name__}: {exc}"})
+                continue
             fit_rows.append(row)
             by_phase_law.setdefault((phase, name), []).append((row, fit))
             lesion_parts.append(_lesion_rows(law, fit, a, settings).assign(
@@ -355,3 +363,17 @@ def population_tables(phased: pd.DataFrame, *, settings: FitSettings = FitSettin
     else:
         out["backtest.tsv"] = _frame([], BACKTEST)
     return out
+
+
+def from_longitudinal(longitudinal: pd.DataFrame, events: pd.DataFrame | None = None, *,
+                      config=None) -> dict[str, pd.DataFrame]:
+    """:func:`population_tables` from ``longitudinal.tsv`` rows and events (as ``fit`` reads
+    them): phases and the sessions that enter the fits come from
+    :func:`pipeline.phases.assign_phases`, exactly as for the per-lesion fits."""
+    from pipeline import phases
+    from pipeline.config import Config
+
+    config = config or Config()
+    table = longitudinal if "group" in longitudinal.columns else longitudinal.assign(group="")
+    phased = phases.assign_phases(table, events, settings=config.fitting)
+    return population_tables(phased, settings=config.fitting, population=config.population)

@@ -74,7 +74,10 @@ def _population(law: Law, train: pd.DataFrame, held: pd.DataFrame, settings: Fit
         if not len(mine):
             continue
         a = _arrays(rows)
-        fit, _ = fit_cohort(law, a, settings=settings, covariance=population.covariance)
+        try:
+            fit, _ = fit_cohort(law, a, settings=settings, covariance=population.covariance)
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+            continue                      # the law failed on this cohort: no prediction
         index = a["ids"].reset_index().merge(mine, on=["subject", "lesion"], how="inner")
         pick = index["index"].to_numpy()
         t_new = np.zeros(len(a["t"]))
