@@ -121,3 +121,47 @@ def test_backtest_population_beats_individual_with_three_sessions():
     pop = pred[pred.method == "population"]
     inside = ((pop.observed >= pop.low) & (pop.observed <= pop.high)).mean()
     assert 0.85 <= inside <= 1.0, inside
+
+
+def test_fit_writes_population_tables_and_evaluate_reads_them(tmp_path):
+    # wiring (common practice): the four tables with the contract's columns first and sidecars
+    # describing every column; 'enabled = false' removes them; evaluate --source population
+    import json
+    from dataclasses import replace
+
+    from pipeline.config import Config
+    from pipeline.later_stages import run_fitting
+    from pipeline.tables import read_table, write_table
+    from pipeline.workflow import evaluate_only
+
+    rows = _power_rows(24, 4, 8).assign(session=lambda d: (d.day // 60 + 1).astype(int).astype(str),
+                                        status="present", group="")
+    write_table(rows.drop(columns=["in_fit", "phase"]), tmp_path / "longitudinal.tsv")
+    config = Config(population=PopulationSettings(models=("power", "exponential")))
+    run_fitting(tmp_path, config=config, events=None)
+    contract = {"population_fits.tsv": "group phase model n_lesions n_subjects n_points beta_mean "
+                "beta_mean_ci_low beta_mean_ci_high beta_sd sigma_log log_likelihood aic best "
+                "method note",
+                "population_lesions.tsv": "subject lesion phase model n_points beta beta_ci_low "
+                "beta_ci_high shrinkage forecast_day forecast_mm3 forecast_low_mm3 "
+                "forecast_high_mm3 note group",
+                "group_contrasts.tsv": "group_a group_b phase model beta_diff beta_diff_ci_low "
+                "beta_diff_ci_high p_value",
+                "backtest.tsv": "group method model n_lesions median_abs_log_error coverage"}
+    for name, columns in contract.items():
+        header = (tmp_path / name).read_text().splitlines()[0].split("\t")
+        assert header[:len(columns.split())] == columns.split(), name
+        doc = json.loads((tmp_path / name.replace(".tsv", ".json")).read_text())
+        assert set(header) <= set(doc), name
+    lesions = read_table(tmp_path / "population_lesions.tsv")
+    assert len(lesions) == 2 * 24
+    outcomes = lesions[lesions.model == "power"][["subject", "lesion"]].assign(
+        outcome=["yes", "no"] * 12)
+    write_table(outcomes, tmp_path / "outcomes.tsv")
+    assert evaluate_only(tmp_path, tmp_path / "outcomes.tsv", figures=("beta",), phase=None,
+                         model="power", positive="yes", source="population") == 0
+    assert (tmp_path / "evaluation.tsv").exists()
+    off = replace(config, population=replace(config.population, enabled=False))
+    run_fitting(tmp_path, config=off, events=None)
+    assert not (tmp_path / "population_fits.tsv").exists()
+    assert not (tmp_path / "backtest.json").exists()
