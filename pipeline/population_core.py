@@ -188,7 +188,8 @@ class _Inner:
                  - 0.5 * quad - 0.5 * logdet_o + 0.5 * self.zz[None, :] + logdet_l[:, None])
         log_w = np.where(np.isfinite(log_w), log_w, -np.inf)
         top = log_w.max(1, keepdims=True)
-        weight = np.exp(log_w - top)
+        with np.errstate(invalid="ignore"):            # a lesion without any valid draw
+            weight = np.exp(log_w - top)
         total = weight.sum(1, keepdims=True)
         ll = top[:, 0] + np.log(total[:, 0] / len(z))
         weight = weight / total
@@ -196,7 +197,7 @@ class _Inner:
         dev = phi - mean[:, None, :]
         cov = np.einsum("md,mdp,mdq->mpq", weight, dev, dev)
         ess = 1.0 / (weight ** 2).sum(1)
-        e_rss = (weight * rss).sum(1)
+        e_rss = (weight * np.where(np.isfinite(rss), rss, 0.0)).sum(1)
         bad = ~np.isfinite(ll) | ~np.isfinite(mean).all(1)
         if bad.any():                   # no draw inside the law's domain: Laplace moments
             JJ = np.einsum("mnp,mnq->mpq", J[bad], J[bad])
