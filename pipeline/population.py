@@ -119,7 +119,7 @@ def _starts(law: Law, a: dict) -> np.ndarray:
 
 
 def fit_cohort(law: Law, a: dict, *, settings: FitSettings = FitSettings(),
-               covariance: str = "full") -> tuple[PopulationFit, Cohort]:
+               covariance: str = "diagonal") -> tuple[PopulationFit, Cohort]:
     """Population fit of one law to the arrays of one (group, phase) (see :func:`_arrays`)."""
     y_obs = np.where(a["w"] > 0, a["y"], np.nan)
     lower, upper = law.bounds(np.nanmin(y_obs, 1), np.nanmax(y_obs, 1), settings)
@@ -129,14 +129,19 @@ def fit_cohort(law: Law, a: dict, *, settings: FitSettings = FitSettings(),
 
 
 def _mu_cov(fit: PopulationFit) -> np.ndarray:
-    cov = fit.mu_cov
-    return cov if np.isfinite(cov).all() else fit.mu_cov_model
+    """Robust covariance of mu (model-based when not available), made positive semi-definite."""
+    cov = fit.mu_cov if np.isfinite(fit.mu_cov).all() else fit.mu_cov_model
+    if not np.isfinite(cov).all():
+        return np.full_like(cov, np.nan)
+    value, vector = np.linalg.eigh(0.5 * (cov + cov.T))
+    return (vector * np.maximum(value, 0.0)) @ vector.T
 
 
 def individual_cov(fit: PopulationFit) -> np.ndarray:
     """Conditional covariances widened by the uncertainty of mu: C + G V_mu G'."""
     G = fit.cond_cov @ np.linalg.inv(fit.omega)
-    return fit.cond_cov + G @ _mu_cov(fit) @ np.swapaxes(G, 1, 2)
+    extra = G @ np.nan_to_num(_mu_cov(fit)) @ np.swapaxes(G, 1, 2)
+    return fit.cond_cov + 0.5 * (extra + np.swapaxes(extra, 1, 2))
 
 
 def predict(law: Law, fit: PopulationFit, cov: np.ndarray, t_new: np.ndarray, *,
