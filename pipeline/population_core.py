@@ -127,7 +127,7 @@ class _Inner:
         self.modes = np.clip(start, cohort.lower, cohort.upper)
         self.n = cohort.t.shape[1]
 
-    def solve(self, mu: Array, omega: Array, sigma2: float) -> dict:
+    def solve(self, mu: Array, omega: Array, sigma2: float, *, max_iter: int = 15) -> dict:
         c, law, n = self.c, self.law, self.n
         sigma = np.sqrt(sigma2)
         prec = np.linalg.inv(omega)
@@ -145,7 +145,7 @@ class _Inner:
         # warm start from the last modes; every 10th call also from the population mean,
         # keeping the better of the two per lesion (guards against a poor local mode)
         modes, cost = levenberg_marquardt(model, ta, ya, self.modes, c.lower, c.upper,
-                                          max_iter=60)
+                                          max_iter=max_iter)
         if self.calls % 10 == 0:
             other, cost2 = levenberg_marquardt(model, ta, ya, np.broadcast_to(mu, modes.shape),
                                                c.lower, c.upper, max_iter=60)
@@ -323,12 +323,12 @@ def fit_population(law: Law, cohort: Cohort, start: Array, *, diagonal: bool = F
         except np.linalg.LinAlgError:
             good = False
         vec, ll = (v3, s3["ll"]) if good else (v2, s1["ll"])
-        if abs(ll - ll_old) <= tol * (1.0 + abs(ll)) and np.abs(r).max() < 1e-6:
+        if abs(ll - ll_old) <= tol * (1.0 + abs(ll)):
             converged = True
             break
         ll_old = ll
     mu, omega, sigma2 = _unpack(vec, p, diagonal)
-    state = inner.solve(mu, omega, sigma2)
+    state = inner.solve(mu, omega, sigma2, max_iter=100)
     n_clusters = int(cohort.cluster.max()) + 1 if len(cohort.cluster) else 0
     mu_cov, mu_cov_model = _robust_cov(state, mu, cohort.cluster, n_clusters)
     return PopulationFit(mu, omega, float(np.sqrt(sigma2)), state["mean"], state["C"], mu_cov,
