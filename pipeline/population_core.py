@@ -103,7 +103,8 @@ def _omega_from(vec: Array, p: int, diagonal: bool) -> Array:
 def _pack(mu: Array, omega: Array, sigma2: float, diagonal: bool) -> Array:
     p = len(mu)
     if diagonal:
-        return np.concatenate([mu, 0.5 * np.log(np.diag(omega)), [0.5 * np.log(sigma2)]])
+        return np.concatenate([mu, 0.5 * np.log(np.maximum(np.diag(omega), 1e-300)),
+                               [0.5 * np.log(sigma2)]])
     L = np.linalg.cholesky(omega)
     return np.concatenate([mu, np.log(np.diag(L)), L[np.tril_indices(p, -1)],
                            [0.5 * np.log(sigma2)]])
@@ -318,7 +319,8 @@ def fit_population(law: Law, cohort: Cohort, start: Array, *, diagonal: bool = F
         alpha = min(alpha, -1.0)
         trial = vec - 2.0 * alpha * r + alpha ** 2 * v
         try:
-            v3, s3 = em(trial)
+            with np.errstate(all="ignore"):          # an extrapolation may overshoot: judged below
+                v3, s3 = em(trial)
             good = np.isfinite(v3).all() and s3["ll"] >= s1["ll"] - 1e-12 * abs(s1["ll"])
         except np.linalg.LinAlgError:
             good = False
