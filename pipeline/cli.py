@@ -162,13 +162,17 @@ def evaluate(out: Path = OutArg,
              phase: str | None = typer.Option(None, "--phase", help="Only fits of this phase."),
              model: str = typer.Option("power", "--model", help="Fits of this model, or 'best'."),
              positive: str | None = typer.Option(None, "--positive", help="Outcome value "
-                                                    "that counts as positive.")) -> None:
+                                                    "that counts as positive."),
+             source: str = typer.Option("fits", "--source", help="'fits' (per-lesion fits, "
+                                        "fits.tsv) or 'population' (the population model's "
+                                        "individual estimates, population_lesions.tsv).")
+             ) -> None:
     """How well a fitted figure separates two outcomes: evaluation.tsv."""
     from pipeline.run.commands import evaluate_only
 
     check_out(out, earlier_run=True)
     raise typer.Exit(evaluate_only(out, outcomes, figures=tuple(figure), phase=phase,
-                                   model=model, positive=positive))
+                                   model=model, positive=positive, source=source))
 
 
 @app.command(epilog=EPILOG)

@@ -15,8 +15,8 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.errors import ConfigError
-from pipeline.settings import (FitSettings, MatchSettings, ReportSettings, ResponseSettings,
-                               VolumeSettings)
+from pipeline.settings import (FitSettings, MatchSettings, PopulationSettings, ReportSettings,
+                               ResponseSettings, VolumeSettings)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -28,6 +28,7 @@ class Config:
     fitting: FitSettings = FitSettings()
     report: ReportSettings = ReportSettings()
     response: ResponseSettings = ResponseSettings()
+    population: PopulationSettings = PopulationSettings()
 
     def as_dict(self) -> dict[str, Any]:
         """Plain nested dict (tuples as lists), as written to ``provenance.json``."""

@@ -154,6 +154,25 @@ class ResponseSettings:
         _require(self.absolute_mm >= 0, "absolute_mm must be >= 0")
 
 
+# ---- population model: owned by pipeline/growth/population.py's authors; edit only this class ----
+@dataclass(frozen=True)
+class PopulationSettings:
+    """Population (mixed-effects) growth model over each group and phase."""
+
+    enabled: bool = True              # write population_fits.tsv and its companions
+    models: tuple[str, ...] = ("power", "exponential", "gompertz", "logistic", "surface")
+    covariance: str = "diagonal"      # between-lesion covariance: 'diagonal' or 'full'
+    backtest: bool = True             # refit without each lesion's last session (backtest.tsv)
+
+    def __post_init__(self) -> None:
+        known = ("power", "exponential", "gompertz", "logistic", "surface")
+        unknown = [m for m in self.models if m not in known]
+        _require(len(self.models) > 0 and not unknown,
+                 f"population models must name known laws {list(known)}, got {self.models}")
+        _require(self.covariance in ("full", "diagonal"),
+                 f"covariance must be 'full' or 'diagonal', got {self.covariance!r}")
+
+
 # ---- report: owned by pipeline/report/build.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class ReportSettings:

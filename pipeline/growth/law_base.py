@@ -159,5 +159,3 @@ class Law:
             q = np.exp(np.minimum(intercept - lk, 0.0))
             out.append(np.stack([intercept, slope / np.maximum(1.0 - q, 0.05), lk], -1))
         return out
-
-

@@ -163,5 +163,3 @@ def _run_details(provenance: dict) -> list[tuple[str, str]]:
         elif isinstance(value, (str, int, float)):
             details.append((str(key), str(value)))
     return details
-
-

@@ -142,5 +142,3 @@ def cell(value: object) -> str:
     if isinstance(value, float):
         return number(value, 0 if abs(value) >= 100 else 2)
     return "n/a" if value is None else str(value)
-
-

@@ -206,4 +206,3 @@ SUBJECT_SECTIONS = (
     Section("unassigned", "sections/unassigned.html.j2", _unassigned),
     Section("lesions", "sections/lesions.html.j2", _lesions),
 )
-

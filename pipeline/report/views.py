@@ -303,4 +303,3 @@ def _slices(cache: ScanCache, view: LesionView, settings: ReportSettings,
                                []).append(session)
     where = "; ".join(f"{k}: session(s) {', '.join(v)}" for k, v in backgrounds.items())
     return tuple(panels), f"{CAPTION} Background {where}."
-

@@ -26,7 +26,7 @@ def tables() -> dict[str, Dictionary]:
 
     Built on first use, so that stage 1 alone does not import the later stages.
     """
-    from pipeline.growth import evaluate, fit_table, group_fits, response
+    from pipeline.growth import evaluate, fit_table, group_fits, population_columns, response
     from pipeline.matching import links
     from pipeline.run import sidecars
     from pipeline.volumes import columns as volume_columns
@@ -47,6 +47,10 @@ def tables() -> dict[str, Dictionary]:
         "response_subjects.tsv": response.SUMMARY_COLUMNS,
         "evaluation.tsv": evaluate.COLUMNS,
         "evaluation_thresholds.tsv": evaluate.THRESHOLD_COLUMNS,
+        "population_fits.tsv": population_columns.FITS,
+        "population_lesions.tsv": population_columns.LESIONS,
+        "group_contrasts.tsv": population_columns.CONTRASTS,
+        "backtest.tsv": population_columns.BACKTEST,
     }
 
 #: The key columns of docs/outputs.md, first in their table in this order (the others follow

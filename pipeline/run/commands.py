@@ -447,19 +447,23 @@ def report_only(out: Path, *, config: Config) -> int:
 
 
 def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase: str | None,
-                  model: str, positive: str | None) -> int:
-    """``lesion-growth evaluate``: evaluation.tsv (+ evaluation_thresholds.tsv)."""
+                  model: str, positive: str | None, source: str = "fits") -> int:
+    """``lesion-growth evaluate``: evaluation.tsv (+ evaluation_thresholds.tsv); ``source``
+    'population' evaluates the population model's individual estimates instead of fits.tsv."""
     from pipeline.growth import evaluate
     from pipeline.io.tsv import read_table
     from pipeline.run.catalog import write_output
 
-    if not (out / "fits.tsv").exists():
-        raise UsageError(f"{out}: no fits.tsv; run 'lesion-growth fit' or 'run' first")
+    name = {"fits": "fits.tsv", "population": "population_lesions.tsv"}.get(source)
+    if name is None:
+        raise UsageError(f"--source must be 'fits' or 'population', got {source!r}")
+    if not (out / name).exists():
+        raise UsageError(f"{out}: no {name}; run 'lesion-growth fit' or 'run' first")
     if not Path(outcomes).is_file():
         raise UsageError(f"{outcomes}: outcomes file not found")
     with locked(out):
         run_state.require(out, "evaluate")
-        fits = read_table(out / "fits.tsv")
+        fits = read_table(out / name)
         table = read_table(outcomes, text_columns=("subject", "outcome"))
         tracks = out / "longitudinal.tsv"
         known = set((read_table(tracks) if tracks.exists() else fits)["subject"].astype(str))

@@ -22,7 +22,6 @@ from pipeline.volumes.components import LESION_COLUMNS, LabelledScan
 from pipeline.geometry import voxel_volume_mm3
 
 
-
 def say(message: str) -> None:
     """One line for a person, on stderr (stdout stays clean for scripts)."""
     print(message, file=sys.stderr, flush=True)

@@ -139,5 +139,3 @@ def register_subject(images: dict[str, Path | None], subject: str, scans: list[L
                      f"{result.quality:.3f} (before {result.quality_before:.3f})")
         transforms[scan.session] = result.matrix_ras
     return transforms
-
-

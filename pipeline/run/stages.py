@@ -121,8 +121,6 @@ def _write_stage2(out: Path, parts: dict[str, list[pd.DataFrame]]) -> None:
         write_output(out, name, pd.concat(frames, ignore_index=True) if frames else empty(name))
 
 
-
-
 def events_table(path: Path) -> tuple[pd.DataFrame, str]:
     """The events file as a table and its time column ('date' or 'day'); UsageError when it is
     missing or lacks columns (checked before any work by ``run``)."""
@@ -213,6 +211,12 @@ def run_fitting(out: Path, *, config: Config, events: pd.DataFrame | None) -> No
     write_output(out, "fits.tsv", fits)
     write_output(out, "unfitted.tsv", unfitted)
     write_output(out, "group_fits.tsv", group_fits)
+    if config.population.enabled:
+        _write_population(out, read_table(out / "longitudinal.tsv"), events, config)
+    else:                                   # no stale population tables from an earlier run
+        for name in POPULATION_TABLES:
+            for path in (out / name, (out / name).with_suffix(".json")):
+                path.unlink(missing_ok=True)
     if events is not None:
         shown = events.assign(day=events["day_given"], lesion=events["lesion"].astype("Int64"))
         write_output(out, "events.tsv", shown[list(EVENT_COLUMNS)])
@@ -234,6 +238,25 @@ def _write_response(out: Path, *, config: Config, events: pd.DataFrame | None) -
     table = response.assess_response(measures, events, settings=config.response)
     write_output(out, "response.tsv", table)
     write_output(out, "response_subjects.tsv", response.summarize_response(table))
+
+
+#: The population model's tables (pipeline.growth.population).
+POPULATION_TABLES = ("population_fits.tsv", "population_lesions.tsv", "group_contrasts.tsv",
+                     "backtest.tsv")
+
+
+def _write_population(out: Path, longitudinal: pd.DataFrame, events: pd.DataFrame | None,
+                      config: Config) -> None:
+    """population_fits.tsv, population_lesions.tsv, group_contrasts.tsv, backtest.tsv."""
+    from pipeline.growth import population
+
+    try:
+        tables = population.from_longitudinal(longitudinal, events, config=config)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        say(f"warning: population model not fitted: {type(exc).__name__}: {exc}")
+        return
+    for name, table in tables.items():
+        write_output(out, name, table)
 
 
 def load_provenance(out: Path) -> dict:

@@ -38,7 +38,9 @@ STAGES = ("volumes", "match", "fit", "evaluate")
 #: Tables each stage writes (checked by SHA-256; a table the stage did not write is skipped).
 FILES = {"volumes": ("lesions.tsv", "masks.tsv"),
          "match": ("matches.tsv", "longitudinal.tsv", "registration.tsv"),
-         "fit": ("fits.tsv", "group_fits.tsv", "unfitted.tsv", "events.tsv"),
+         "fit": ("fits.tsv", "group_fits.tsv", "unfitted.tsv", "events.tsv", "response.tsv",
+                 "response_subjects.tsv", "population_fits.tsv", "population_lesions.tsv",
+                 "group_contrasts.tsv", "backtest.tsv"),
          "evaluate": ("evaluation.tsv", "evaluation_thresholds.tsv")}
 #: What to run to bring each stage up to date.
 REMEDY = {"volumes": "rerun 'lesion-growth run' (or 'volumes') on the input",

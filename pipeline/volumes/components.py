@@ -48,8 +48,6 @@ class LabelledScan:
         return full
 
 
-
-
 def structure(connectivity: int) -> np.ndarray:
     """3x3x3 neighbourhood for 6-, 18- or 26-connectivity.
 
