@@ -165,14 +165,16 @@ def evaluate(out: Path = OutArg,
                                                     "that counts as positive."),
              source: str = typer.Option("fits", "--source", help="'fits' (per-lesion fits, "
                                         "fits.tsv) or 'population' (the population model's "
-                                        "individual estimates, population_lesions.tsv).")
-             ) -> None:
+                                        "individual estimates, population_lesions.tsv)."),
+             config: Path | None = ConfigOpt) -> None:
     """How well a fitted figure separates two outcomes: evaluation.tsv."""
     from pipeline.run.commands import evaluate_only
 
+    settings = _config(config)
     check_out(out, earlier_run=True)
     raise typer.Exit(evaluate_only(out, outcomes, figures=tuple(figure), phase=phase,
-                                   model=model, positive=positive, source=source))
+                                   model=model, positive=positive, source=source,
+                                   config=settings))
 
 
 @app.command(epilog=EPILOG)

@@ -15,8 +15,8 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.errors import ConfigError
-from pipeline.settings import (FitSettings, MatchSettings, PopulationSettings, ReportSettings,
-                               ResponseSettings, VolumeSettings)
+from pipeline.settings import (EvaluateSettings, FitSettings, MatchSettings, PopulationSettings,
+                               ReportSettings, ResponseSettings, VolumeSettings)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -29,6 +29,7 @@ class Config:
     report: ReportSettings = ReportSettings()
     response: ResponseSettings = ResponseSettings()
     population: PopulationSettings = PopulationSettings()
+    evaluate: EvaluateSettings = EvaluateSettings()
 
     def as_dict(self) -> dict[str, Any]:
         """Plain nested dict (tuples as lists), as written to ``provenance.json``."""

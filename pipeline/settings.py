@@ -173,6 +173,20 @@ class PopulationSettings:
                  f"covariance must be 'full' or 'diagonal', got {self.covariance!r}")
 
 
+# ---- evaluate: owned by pipeline/growth/evaluate.py's authors; edit only this class ----
+@dataclass(frozen=True)
+class EvaluateSettings:
+    """Marker evaluation (evaluation.tsv): the subject bootstrap of the ROC AUC interval."""
+
+    bootstrap: int = 2000             # subject-bootstrap resamples of the AUC interval
+    seed: int = 0                     # random seed of the bootstrap
+    confidence: float = 0.95          # level of the AUC interval (0-1)
+
+    def __post_init__(self) -> None:
+        _require(self.bootstrap >= 100, "bootstrap must be >= 100 (resamples of the interval)")
+        _require(0.5 <= self.confidence < 1, "confidence must be in [0.5, 1)")
+
+
 # ---- report: owned by pipeline/report/build.py's authors; edit only this class ----
 @dataclass(frozen=True)
 class ReportSettings:

@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, sparse, stats
 
+from pipeline.growth.fit_table import GROUP_COLUMNS as COLUMNS  # noqa: F401 - its table
 from pipeline.settings import FitSettings
 
 try:  # optional: pins BLAS to one thread around the solver (see _one_blas_thread)
@@ -43,56 +44,6 @@ except ImportError:  # pragma: no cover - without it the BLAS thread count is le
     threadpool_limits = None
 
 _DEFAULT_SETTINGS = FitSettings()  # frozen, so one shared default is safe
-
-#: Descriptions and units of the ``group_fits.tsv`` columns (BIDS sidecar style).
-COLUMNS: dict[str, dict] = {
-    "group": {"Description": "Group from the manifest; subjects without a group form 'all'"},
-    "phase": {"Description": "Treatment phase the lesions' sessions belong to (untreated, "
-                             "after-<event>, ...)"},
-    "model": {"Description": "Growth law with the shared exponent: dV/dt = alpha * V^beta",
-              "Levels": {"power": "power law (generalized von Bertalanffy), beta shared"}},
-    "n_lesions": {"Description": "Lesions in the fit (each with at least 3 fitted sessions in "
-                                 "the phase; lesions with the same volume at every fitted session "
-                                 "are left out and counted in note)", "Units": "lesions"},
-    "n_points": {"Description": "Fitted (lesion, session) volumes", "Units": "volumes"},
-    "beta": {"Description": "Shared growth exponent beta of dV/dt = alpha * V^beta",
-             "Units": "1"},
-    "beta_ci_low": {"Description": "Lower end of the profile-likelihood confidence interval of "
-                                   "beta (F-based, sigma unknown); n/a when the profile stays "
-                                   "below the threshold down to the lower bound of beta",
-                    "Units": "1"},
-    "beta_ci_high": {"Description": "Upper end of the profile-likelihood confidence interval of "
-                                    "beta; n/a when unbounded within the bounds of beta",
-                     "Units": "1"},
-    "n_subjects": {"Description": "Subjects contributing lesions", "Units": "subjects"},
-    "rss_log": {"Description": "Residual sum of squares of natural-log volumes at the optimum",
-                "Units": "1"},
-    "dof": {"Description": "Residual degrees of freedom: n_points - (2 * n_lesions + 1)",
-            "Units": "1"},
-    "sigma_log": {"Description": "Residual standard deviation of log-volume, sqrt(rss_log / "
-                               "dof): roughly the relative volume error", "Units": "1"},
-    "confidence": {"Description": "Confidence level of the beta interval", "Units": "1"},
-    "ci_method": {"Description": "Reference distribution of the profile-likelihood interval",
-                  "Levels": {"F": "F(1, dof): sigma estimated from the residuals",
-                             "chi2": "chi-square(1): sigma fixed to the configured "
-                                     "measurement_error"}},
-    "p_exponential": {"Description": "F-test p-value of beta = 1 (exponential growth) against "
-                                     "the free shared beta", "Units": "1"},
-    "median_fold_change": {"Description": "Median over lesions of the last / first fitted "
-                                          "volume in the phase", "Units": "1"},
-    "n_singular": {"Description": "Lesions whose finite-time singularity (beta > 1) or vanishing "
-                                  "time (beta < 1, shrinking) would fall inside their fitted "
-                                  "window at the fitted beta; 0 for a valid fit",
-                   "Units": "lesions"},
-    "status": {"Description": "Outcome of the fit",
-               "Levels": {"ok": "fitted, interval computed",
-                          "exact": "no residual degrees of freedom: beta without interval",
-                          "at-bound": "beta sits on a bound of beta_bounds",
-                          "no-lesions": "no lesion has enough fitted sessions in this phase",
-                          "failed": "the solver did not converge or the fit is invalid "
-                                    "(see note)"}},
-    "note": {"Description": "Why a fit is missing, partial or to be read with care"},
-}
 
 _Z_FLOOR = 1e-9  # smallest 1 + (1 - beta) k t treated as the closed form; below: linear extension
 _SMALL_U = 1e-10  # |1 - beta| below this uses the series of log1p(u x) / u

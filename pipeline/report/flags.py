@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
 import pandas as pd
 
 from pipeline.report.data import ReportInputs, as_number, is_true, records
@@ -58,20 +57,13 @@ def subject_links(matches: pd.DataFrame, mapping: dict, subject: str,
         key_from = (str(row["session_from"]), int(row["component_from"]))
         key_to = (str(row["session_to"]), int(row["component_to"]))
         reasons = [str(row.get("review_reason") or "") or "flagged by stage 2"] \
-            if _marked(row.get("review", False)) else []
+            if is_true(row.get("review", False)) else []
         rows.append({**row, "lesion_from": mapping.get(key_from, "?"),
                      "lesion_to": mapping.get(key_to, "?"), "flagged": bool(reasons),
                      "why": "; ".join(reasons + (["corrected by QA"] if is_true(
                          row.get("corrected", False)) else [])),
                      "anchor": slug("link", subject, *key_from, *key_to)})
     return pd.DataFrame(rows)
-
-
-def _marked(value: object) -> bool:
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    text = str(value).strip().lower()
-    return text not in ("", "false", "0", "no", "n/a", "none", "nan")
 
 
 def _link_flags(links: pd.DataFrame, subject: str) -> list[Flag]:

@@ -447,7 +447,8 @@ def report_only(out: Path, *, config: Config) -> int:
 
 
 def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase: str | None,
-                  model: str, positive: str | None, source: str = "fits") -> int:
+                  model: str, positive: str | None, source: str = "fits",
+                  config: Config = Config()) -> int:
     """``lesion-growth evaluate``: evaluation.tsv (+ evaluation_thresholds.tsv); ``source``
     'population' evaluates the population model's individual estimates instead of fits.tsv."""
     from pipeline.growth import evaluate
@@ -472,7 +473,10 @@ def evaluate_only(out: Path, outcomes: Path, *, figures: tuple[str, ...], phase:
             say(f"error: sub {row['subject']}: {row['reason']}")
         try:
             result = evaluate.evaluate_marker(fits, table, figures=figures, phase=phase,
-                                              model=model, positive=positive)
+                                              model=model, positive=positive,
+                                              n_boot=config.evaluate.bootstrap,
+                                              seed=config.evaluate.seed,
+                                              confidence=config.evaluate.confidence)
             thresholds = evaluate.threshold_table(fits, table, figures=figures, phase=phase,
                                                   model=model, positive=positive)
         except ValueError as exc:

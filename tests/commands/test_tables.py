@@ -62,3 +62,19 @@ def test_the_check_sees_an_undescribed_column(out, tmp_path):
     bad = tmp_path / "lesions.tsv"
     bad.write_text((out / "lesions.tsv").read_text().replace("volume_mm3", "volume_ml", 1))
     assert "volume_ml" in [c for c in header(bad) if c not in tables()["lesions.tsv"]]
+
+
+def test_evaluate_takes_the_bootstrap_from_its_config(out, tmp_path):
+    # `evaluate --config` reads [evaluate] like every other command reads its section; the
+    # resample count reaches evaluation.tsv's n_boot column (docs/outputs.md, evaluation.tsv).
+    from pipeline.io.tsv import read_table
+
+    config = tmp_path / "eval.toml"
+    config.write_text("[evaluate]\nbootstrap = 300\nseed = 7\n")
+    outcomes = out.parent / "outcomes.tsv"
+    assert main(["evaluate", str(out), "--outcomes", str(outcomes), "--positive",
+                 "progression", "--config", str(config)]) == 0
+    assert read_table(out / "evaluation.tsv")["n_boot"].tolist() == [300]
+    assert main(["evaluate", str(out), "--outcomes", str(outcomes), "--positive",
+                 "progression"]) == 0
+    assert read_table(out / "evaluation.tsv")["n_boot"].tolist() == [2000]
