@@ -3,11 +3,7 @@ the run layer itself writes: masks.tsv, errors.tsv, events.tsv. Each stage keeps
 of its own tables; :mod:`pipeline.run.catalog` lists them all."""
 from __future__ import annotations
 
-_ID = {
-    "subject": {"Description": "Subject label (BIDS label without 'sub-', or as in the manifest)"},
-    "session": {"Description": "Session label (without 'ses-', or as in the manifest)"},
-    "day": {"Description": "Time since the subject's first session", "Units": "day"},
-}
+from pipeline.volumes.columns import SCAN_ID as _ID
 
 
 MASK_COLUMNS = {

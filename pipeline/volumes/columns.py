@@ -2,7 +2,8 @@
 its description and units), in the table's order; the tuple of names is derived from it."""
 from __future__ import annotations
 
-_ID = {
+#: The columns that name a scan, shared by the tables of scans.
+SCAN_ID = {
     "subject": {"Description": "Subject label (BIDS label without 'sub-', or as in the manifest)"},
     "session": {"Description": "Session label (without 'ses-', or as in the manifest)"},
     "day": {"Description": "Time since the subject's first session", "Units": "day"},
@@ -11,7 +12,7 @@ _ID = {
 #: lesions.tsv, one row per connected component in one mask (key columns of docs/outputs.md
 #: first).
 LESIONS = {
-    **_ID,
+    **SCAN_ID,
     "component": {"Description": "Connected component number within this scan, 1 = largest"},
     "label": {"Description": "Most frequent selected label value inside the component"},
     "voxels": {"Description": "Number of voxels in the component"},
