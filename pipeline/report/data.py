@@ -60,15 +60,16 @@ class ReportInputs:
     provenance: dict
     _by_subject: dict = field(default_factory=dict, repr=False, compare=False)
 
-    def table(self, name: str) -> pd.DataFrame:
+    def table(self, name: str, *, optional: bool = False) -> pd.DataFrame:
         """The table read from ``name`` (empty when missing).
 
         A table not in :data:`INPUT_FILES` is read from OUT on first use, and its absence is
-        recorded like any other, so a new section needs only its data function.
+        recorded like any other (unless ``optional``: a table a setting may turn off), so a new
+        section needs only its data function.
         """
         if name not in self.tables and name.endswith(".tsv"):
             self.tables[name], problem = read_one(self.out_dir, name, "its section")
-            if problem:
+            if problem and not (optional and not (self.out_dir / name).exists()):
                 self.problems[name] = problem
         return self.tables.get(name, pd.DataFrame())
 

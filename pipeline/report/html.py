@@ -76,6 +76,7 @@ class SubjectView:
     lesion_ids: tuple[int, ...]
     flags: tuple[Flag, ...] = ()
     notes: tuple[str, ...] = field(default_factory=tuple)
+    estimates: pd.DataFrame | None = None   # per lesion phase: own fit vs population estimate
 
 
 def slug(*parts: object) -> str:

@@ -111,6 +111,38 @@ def _evaluation(cohort: Cohort) -> dict:
             "table": rows(table, [(c, c) for c in table.columns]) if len(table) else None}
 
 
+def _population(cohort: Cohort) -> dict:
+    """population_fits.tsv per group and phase (the power law first), with each row's note."""
+    table = cohort.inputs.table("population_fits.tsv", optional=True)   # [population] enabled
+    if table.empty:
+        return {"missing": not (cohort.inputs.out_dir / "population_fits.tsv").exists(),
+                "table": None}
+    shown = table.assign(
+        beta_text=[beta_text(r.get("beta_mean"), r.get("beta_mean_ci_low"),
+                             r.get("beta_mean_ci_high")) for r in records(table)],
+        group=[g or "all" for g in table.get("group", pd.Series("", table.index))])
+    return {"missing": False, "table": rows(shown, [
+        ("group", "group"), ("phase", "phase"), ("model", "law"), ("n_lesions", "lesions"),
+        ("n_subjects", "subjects"), ("beta_text", "mean beta (95% interval)"),
+        ("beta_sd", "between-lesion SD of beta"), ("sigma_log", "residual SD (ln volume)"),
+        ("aic", "AIC"), ("best", "cohort's best law"), ("note", "note")])}
+
+
+def _response(cohort: Cohort) -> dict:
+    """response_subjects.tsv: each subject's best target-lesion response."""
+    table = cohort.inputs.table("response_subjects.tsv", optional=True)   # [response] write
+    if table.empty:
+        return {"missing": not (cohort.inputs.out_dir / "response_subjects.tsv").exists(),
+                "table": None}
+    return {"missing": False, "table": rows(table, [
+        ("subject", "subject"), ("baseline_session", "baseline session"),
+        ("n_target", "target lesions"), ("best_response", "best response"),
+        ("best_change_baseline_pct", "best change of the sum (%)"),
+        ("first_progression_day", "first progression (day)"),
+        ("response_duration_days", "response lasted (days)"),
+        ("best_volume_category", "volume analogue (research)")])}
+
+
 def _subjects(cohort: Cohort) -> dict:
     return {"subjects": [{"subject": s.subject, "href": f"report/{s.page}", "group": s.group,
                           "lesions": len(s.lesions), "flags": len(s.flags),
@@ -128,6 +160,8 @@ INDEX_SECTIONS = (
     Section("flagged", "sections/flagged.html.j2", _flagged),
     Section("review", "sections/review.html.j2", _review),
     Section("summary", "sections/summary.html.j2", _summary),
+    Section("population", "sections/population.html.j2", _population),
+    Section("response", "sections/response.html.j2", _response),
     Section("evaluation", "sections/evaluation.html.j2", _evaluation),
     Section("subjects", "sections/subjects.html.j2", _subjects),
 )
@@ -198,10 +232,20 @@ def _lesion(view: SubjectView, lesion) -> dict:
     return {"view": lesion, "fits": fits, "components": components, "sessions": sessions}
 
 
+def _estimates(view: SubjectView) -> dict:
+    if view.estimates is None or view.estimates.empty:
+        return {"table": None}
+    return {"table": rows(view.estimates, [
+        ("lesion", "lesion"), ("phase", "phase"), ("n_points", "sessions"),
+        ("own", "beta, own fit (95% interval)"), ("population", "beta, population estimate"),
+        ("shrinkage", "share from the population"), ("note", "note")])}
+
+
 #: Sections of a subject page, in order.
 SUBJECT_SECTIONS = (
     Section("subject-flags", "sections/subject_flags.html.j2", _subject_flags),
     Section("timeline", "sections/timeline.html.j2", _timeline),
+    Section("estimates", "sections/estimates.html.j2", _estimates),
     Section("links", "sections/links.html.j2", _links),
     Section("unassigned", "sections/unassigned.html.j2", _unassigned),
     Section("lesions", "sections/lesions.html.j2", _lesions),

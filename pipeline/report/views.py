@@ -23,7 +23,7 @@ from pipeline.report.data import (ReportInputs, ScanCache, component_lesions, fi
                                   lesion_centres, records)
 from pipeline.report.figures import axial_crop
 from pipeline.report.flags import lesion_anchor, subject_flags, subject_links
-from pipeline.report.html import LesionView, Panel, SubjectView, number, slug
+from pipeline.report.html import LesionView, Panel, SubjectView, beta_text, number, slug
 from pipeline.settings import ReportSettings
 
 CAPTION = ("Axial slices through the lesion's centroid (R on the right, anterior up; where the "
@@ -149,7 +149,45 @@ def subject_view(inputs: ReportInputs, subject: str, settings: ReportSettings) -
                        timeline=svg.timeline(longitudinal, fits, events)
                        if len(longitudinal) else None,
                        links=links, lesions=tuple(views), unassigned=lesions[~known],
-                       lesion_ids=tuple(ids), flags=flags, notes=notes)
+                       lesion_ids=tuple(ids), flags=flags, notes=notes,
+                       estimates=estimates(fits, _optional_rows(inputs, "population_lesions.tsv",
+                                                                  subject)))
+
+
+def _optional_rows(inputs: ReportInputs, name: str, subject: str) -> pd.DataFrame:
+    """A subject's rows of a table a setting may turn off (its absence is not a problem)."""
+    inputs.table(name, optional=True)
+    return inputs.of_subject(name, subject)
+
+
+def estimates(fits: pd.DataFrame, population: pd.DataFrame) -> pd.DataFrame | None:
+    """The power law's beta per lesion phase: the lesion's own fit (fits.tsv) beside its
+    population estimate (population_lesions.tsv) with the share the population supplied.
+
+    Examples
+    --------
+    >>> own = pd.DataFrame({"lesion": [1], "phase": ["untreated"], "model": ["power"],
+    ...                     "beta": [1.4], "beta_ci_low": [None], "beta_ci_high": [None]})
+    >>> pop = pd.DataFrame({"lesion": [1], "phase": ["untreated"], "model": ["power"],
+    ...                     "n_points": [3], "beta": [1.5], "beta_ci_low": [1.2],
+    ...                     "beta_ci_high": [1.8], "shrinkage": [0.6], "note": [""]})
+    >>> estimates(own, pop)[["own", "population"]].values.tolist()
+    [['1.40 (no interval)', '1.50 (1.20–1.80)']]
+    """
+    if population.empty or "model" not in population:
+        return None
+    pop = population[population["model"].astype(str) == "power"]
+    if pop.empty:
+        return None
+    own = fits[fits["model"].astype(str) == "power"] if "model" in fits else fits.iloc[0:0]
+    text = {(int(r["lesion"]), str(r["phase"])): beta_text(r.get("beta"), r.get("beta_ci_low"),
+                                                           r.get("beta_ci_high"))
+            for r in records(own)}
+    rows = [{"lesion": int(r["lesion"]), "phase": r["phase"], "n_points": r.get("n_points"),
+             "own": text.get((int(r["lesion"]), str(r["phase"])), "not fitted"),
+             "population": beta_text(r.get("beta"), r.get("beta_ci_low"), r.get("beta_ci_high")),
+             "shrinkage": r.get("shrinkage"), "note": r.get("note")} for r in records(pop)]
+    return pd.DataFrame(rows)
 
 
 def with_panels(inputs: ReportInputs, view: SubjectView, settings: ReportSettings,

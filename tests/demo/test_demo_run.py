@@ -89,3 +89,21 @@ def test_demo_response_categories_match_the_planned_story(demo):
     got = {(r.subject, r.session): r.category for r in response.itertuples()}
     for item in planned:
         assert got[(item["subject"], item["session"])] == item["category"], item
+
+
+def test_report_shows_population_response_and_both_estimates(demo):
+    # The population tables, the response summary and, on each subject's page, the lesion's own
+    # beta beside its population estimate: the report shows what fit wrote (never recomputes).
+    out, _, _ = demo
+    from pipeline.io.tsv import read_table
+
+    index = (out / "report.html").read_text(encoding="utf-8")
+    population = read_table(out / "population_fits.tsv")
+    assert "<section id=\"population\">" in index and "Population model" in index
+    assert index.count("<tr>", index.index("id=\"population\""),
+                       index.index("id=\"response\"")) == len(population) + 1
+    assert "Target-lesion radiographic component only" in index
+    lesions = read_table(out / "population_lesions.tsv")
+    subject = str(lesions[lesions["model"] == "power"]["subject"].iloc[0])
+    page = (out / "report" / f"subject-{subject}.html").read_text(encoding="utf-8")
+    assert "beta, population estimate" in page and "share from the population" in page
