@@ -66,11 +66,8 @@ def _measure_scan(subject: str, session: str, mask_path: str, labels: tuple[int,
 
     try:
         mask = load_mask(mask_path, settings=settings, raw=raw)
-        columns, found = measure_columns(
-            mask.data, mask.affine, labels=labels, connectivity=settings.connectivity,
-            min_volume_mm3=settings.min_volume_mm3,
-            measurable_min_diameter_mm=settings.measurable_min_diameter_mm,
-            measurable_min_slices=settings.measurable_min_slices, name=mask_path)
+        columns, found = measure_columns(mask.data, mask.affine, labels=labels,
+                                         settings=settings, name=mask_path)
     except InputError as exc:
         return ScanResult(subject, session, error=str(exc))
     except MemoryError:

@@ -10,9 +10,12 @@ from pipeline.volumes.columns import LESION_COLUMNS, MEASURE_COLUMNS  # noqa: F4
 from pipeline.voxels import _absent_labels, _label_values
 from pipeline.volumes.diameters import _axial_diameters, _row_axes, axial_axis
 from pipeline.geometry import voxel_volume_mm3
+from pipeline.settings import VolumeSettings
 
 if TYPE_CHECKING:
     import pandas as pd
+
+_DEFAULT = VolumeSettings()   # frozen: one shared default is safe
 
 
 @dataclass(frozen=True, eq=False)
@@ -325,9 +328,8 @@ def _largest_first(raw: np.ndarray, count: int) -> np.ndarray:
 
 
 def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, ...] | None = None,
-                    connectivity: int = 26, min_volume_mm3: float = 0.0,
-                    measurable_min_diameter_mm: float = 10.0, measurable_min_slices: int = 2,
-                    name: str = "mask") -> tuple[pd.DataFrame, np.ndarray, tuple[int, int, int]]:
+                    settings: VolumeSettings = _DEFAULT, name: str = "mask"
+                    ) -> tuple[pd.DataFrame, np.ndarray, tuple[int, int, int]]:
     """Measure every connected lesion in a label mask.
 
     Parameters
@@ -336,6 +338,8 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
         Label mask; ``labels`` selects the lesion values (default: every non-zero value).
     affine : (4, 4) ndarray
         Voxel -> RAS+ world (mm).
+    settings : VolumeSettings
+        Connectivity, minimum volume and the RANO-BM measurability thresholds.
 
     Returns
     -------
@@ -361,24 +365,16 @@ def component_table(data: np.ndarray, affine: np.ndarray, *, labels: tuple[int, 
     >>> table.volume_mm3.tolist(), table.centroid_x_mm.tolist(), offset
     ([8.0], [1.5], (1, 1, 1))
     """
-    table, found = measure_components(
-        data, affine, labels=labels, connectivity=connectivity, min_volume_mm3=min_volume_mm3,
-        measurable_min_diameter_mm=measurable_min_diameter_mm,
-        measurable_min_slices=measurable_min_slices, name=name)
+    table, found = measure_components(data, affine, labels=labels, settings=settings, name=name)
     components, offset = found.image()
     return table, components, offset
 
 
 def measure_components(data: np.ndarray, affine: np.ndarray, *,
-                       labels: tuple[int, ...] | None = None, connectivity: int = 26,
-                       min_volume_mm3: float = 0.0, measurable_min_diameter_mm: float = 10.0,
-                       measurable_min_slices: int = 2, name: str = "mask"
-                       ) -> tuple[pd.DataFrame, LesionVoxels]:
+                       labels: tuple[int, ...] | None = None, settings: VolumeSettings = _DEFAULT,
+                       name: str = "mask") -> tuple[pd.DataFrame, LesionVoxels]:
     """:func:`component_table` with the components kept sparse (what a batch holds per scan)."""
-    columns, found = measure_columns(
-        data, affine, labels=labels, connectivity=connectivity, min_volume_mm3=min_volume_mm3,
-        measurable_min_diameter_mm=measurable_min_diameter_mm,
-        measurable_min_slices=measurable_min_slices, name=name)
+    columns, found = measure_columns(data, affine, labels=labels, settings=settings, name=name)
     return as_table(columns), found
 
 
@@ -390,20 +386,18 @@ def as_table(columns: dict[str, np.ndarray]) -> pd.DataFrame:
 
 
 def measure_columns(data: np.ndarray, affine: np.ndarray, *,
-                    labels: tuple[int, ...] | None = None, connectivity: int = 26,
-                    min_volume_mm3: float = 0.0, measurable_min_diameter_mm: float = 10.0,
-                    measurable_min_slices: int = 2, name: str = "mask"
-                    ) -> tuple[dict[str, np.ndarray], LesionVoxels]:
+                    labels: tuple[int, ...] | None = None, settings: VolumeSettings = _DEFAULT,
+                    name: str = "mask") -> tuple[dict[str, np.ndarray], LesionVoxels]:
     """:func:`measure_components` as plain column arrays: what a stage-1 worker computes
     without importing pandas (a worker process starts faster without it)."""
     data = np.asarray(data)
     affine = np.asarray(affine, dtype=np.float64)
-    found = lesion_voxels(data, connectivity, labels, name)
+    found = lesion_voxels(data, settings.connectivity, labels, name)
     voxel_mm3 = voxel_volume_mm3(affine)
-    columns = _measure(found, data.shape, affine, voxel_mm3, measurable_min_diameter_mm,
-                       measurable_min_slices)
-    keep = columns["volume_mm3"] >= min_volume_mm3
-    if min_volume_mm3 > 0 and not keep.all():
+    columns = _measure(found, data.shape, affine, voxel_mm3, settings.measurable_min_diameter_mm,
+                       settings.measurable_min_slices)
+    keep = columns["volume_mm3"] >= settings.min_volume_mm3
+    if settings.min_volume_mm3 > 0 and not keep.all():
         found = found.keep(columns["component"][keep])
         columns = {key: value[keep] for key, value in columns.items()}
         columns["component"] = np.arange(1, int(keep.sum()) + 1, dtype=np.int64)

@@ -22,7 +22,6 @@ def lesion_table(scans: Iterable[ScanInput], *, config: Config = Config(),
     ``mask`` is an (X, Y, Z) integer array (e.g. a model's output) and ``affine`` its voxel ->
     RAS+ mm matrix; ``day`` is days from any reference (each subject's first day becomes 0).
     """
-    settings = config.volumes
     items = list(scans)
     first = {}
     for subject, _, day, _, _ in items:
@@ -31,11 +30,8 @@ def lesion_table(scans: Iterable[ScanInput], *, config: Config = Config(),
     for subject, session, day, mask, affine in items:
         day = float(day - first[subject])
         affine = np.asarray(affine, dtype=np.float64)
-        table, components, offset = component_table(
-            np.asarray(mask), affine, labels=labels, connectivity=settings.connectivity,
-            min_volume_mm3=settings.min_volume_mm3,
-            measurable_min_diameter_mm=settings.measurable_min_diameter_mm,
-            measurable_min_slices=settings.measurable_min_slices)
+        table, components, offset = component_table(np.asarray(mask), affine, labels=labels,
+                                                    settings=config.volumes)
         parts.append(scan_table(table, subject=subject, session=session, day=day, mask="",
                                 group=group))
         labelled.append(LabelledScan(subject, session, day, components, offset,

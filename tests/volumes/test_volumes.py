@@ -160,7 +160,7 @@ def test_nibabel_standard_mask(connectivity, rank):
     image = nib.load(str(path))
     data = np.asanyarray(image.dataobj)
     _, expected = ndimage.label(data != 0, ndimage.generate_binary_structure(3, rank))
-    table = ours(path, connectivity=connectivity)
+    table = ours(path, settings=VolumeSettings(connectivity=connectivity))
     assert len(table) == expected
     assert table.volume_mm3.sum() == pytest.approx((data != 0).sum() *
                                                    np.prod(image.header.get_zooms()))
@@ -266,7 +266,7 @@ def test_connectivity(offset, expected):
     data[1, 1, 1] = 1
     data[1 + offset[0], 1 + offset[1], 1 + offset[2]] = 1
     for conn, count in expected.items():
-        table, _, _ = component_table(data, np.eye(4), connectivity=conn)
+        table, _, _ = component_table(data, np.eye(4), settings=VolumeSettings(connectivity=conn))
         assert len(table) == count
 
 
@@ -285,7 +285,8 @@ def test_min_volume_drops_and_renumbers():
     data = np.zeros((10, 10, 10), np.uint8)
     data[1, 1, 1] = 1
     data[5:8, 5:8, 5:8] = 1
-    table, comps, _ = component_table(data, np.diag([2.0, 2.0, 2.0, 1.0]), min_volume_mm3=10)
+    table, comps, _ = component_table(data, np.diag([2.0, 2.0, 2.0, 1.0]),
+                                      settings=VolumeSettings(min_volume_mm3=10))
     assert table.component.tolist() == [1] and table.voxels.tolist() == [27]
     assert set(np.unique(comps)) == {0, 1}
 
