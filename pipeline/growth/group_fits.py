@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, sparse, stats
 
+from pipeline.errors import UsageError
 from pipeline.growth.fit_table import GROUP_COLUMNS as COLUMNS  # noqa: F401 - its table
 from pipeline.settings import FitSettings
 
@@ -326,7 +327,7 @@ _ORDER = ("group", "phase", "model", "n_lesions", "n_points", "beta", "beta_ci_l
 def _check_phased(phased: pd.DataFrame) -> None:
     missing = [c for c in _REQUIRED if c not in phased.columns]
     if missing:
-        raise ValueError(f"the phased longitudinal table lacks columns {missing}; expected the "
+        raise UsageError(f"the phased longitudinal table lacks columns {missing}; expected the "
                          "output of pipeline.growth.phases.assign_phases (with 'phase' and "
                          "'in_fit')")
 
